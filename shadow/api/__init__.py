@@ -1,0 +1,1 @@
+"""API: the read-only HTTP application, metrics and dashboard pages (adapter)."""

@@ -1,0 +1,1 @@
+"""Detection: momentum observer, change detection, wear trends, structural modes, health (numerical core)."""

@@ -1,0 +1,1 @@
+"""Estimation: signal conditioning, Kalman filtering of payload and friction, commissioning (numerical core)."""

@@ -1,0 +1,1 @@
+"""Ingest: wire-format codecs (pure) and the MQTT client (adapter)."""

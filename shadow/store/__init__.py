@@ -1,0 +1,1 @@
+"""Store: database schema, migrations and repositories (adapter)."""

@@ -1,0 +1,71 @@
+"""The ``shadow`` command: help lists every command with one line, bad options fail clearly, the demo stops."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+from shadow.cli import build_parser, main
+
+COMMANDS = ("demo", "robot")
+
+
+def run_cli(*args: str, timeout_s: float = 60) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-m", "shadow", *args], capture_output=True, text=True, timeout=timeout_s, check=False
+    )
+
+
+def test_help_lists_each_command_with_one_line() -> None:
+    result = run_cli("--help")
+    assert result.returncode == 0
+    lines = result.stdout.splitlines()
+    for command in COMMANDS:
+        rows = [line for line in lines if line.strip().startswith(command + " ")]
+        assert len(rows) == 1, f"{command!r} should appear once in the command list:\n{result.stdout}"
+        assert len(rows[0].split(None, 1)) == 2, f"{command!r} has no one-line help"
+    assert "Advisory only" in result.stdout
+
+
+def test_every_registered_command_has_help() -> None:
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.dest == "command")
+    names = {choice.dest for choice in sub._choices_actions}  # type: ignore[attr-defined]
+    assert set(COMMANDS) <= names
+    assert all(choice.help for choice in sub._choices_actions)  # type: ignore[attr-defined]
+
+
+def test_unknown_option_fails_with_a_clear_error() -> None:
+    result = run_cli("--no-such-option")
+    assert result.returncode == 2
+    assert "unrecognized arguments: --no-such-option" in result.stderr
+
+
+def test_unknown_command_names_the_choices() -> None:
+    result = run_cli("frobnicate")
+    assert result.returncode == 2
+    assert "invalid choice: 'frobnicate'" in result.stderr
+    assert "demo" in result.stderr
+
+
+def test_missing_command_is_an_error() -> None:
+    with pytest.raises(SystemExit) as exc:
+        main([])
+    assert exc.value.code == 2
+
+
+def test_demo_rejects_a_negative_duration() -> None:
+    result = run_cli("demo", "--duration", "-1")
+    assert result.returncode != 0
+    assert "--duration must be > 0" in result.stderr
+
+
+@pytest.mark.mosquitto
+def test_demo_runs_and_stops_after_its_duration() -> None:
+    result = run_cli("demo", "--duration", "2", timeout_s=120)
+    assert result.returncode == 0, result.stderr
+    assert "advisory only" in result.stdout
+    assert "broker: mosquitto on mqtt://127.0.0.1:" in result.stdout
+    assert "demo stopped" in result.stdout
