@@ -1,0 +1,326 @@
+"""Reading and writing the store. The write side takes a whole step's results in one transaction.
+
+Why one transaction: the estimator checkpoint names the last sequence number its results cover, so
+results and checkpoint must land together or not at all; a restart then resumes exactly after the
+checkpoint, and nothing is lost or doubled. Rows are plain dicts built by the service from the core's
+outputs (words and units in the keys); the API reads them back through the same class.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import sqlalchemy as sa
+
+from shadow.errors import ConfigurationError, ShadowError
+from shadow.store import schema
+from shadow.store.database import create_engine, current_revision, head_revision, migrate
+
+DEAD_LETTER_HEAD_BYTES = 256  # how much of a bad payload is kept for diagnosis
+
+
+class StoreUnavailableError(ShadowError, RuntimeError):
+    """The database cannot be reached or refused the write; nothing of the write was kept."""
+
+
+@dataclass(frozen=True, slots=True)
+class Checkpoint:
+    """Estimator state and the last batch sequence number it covers."""
+
+    robot_id: str
+    last_seq: int
+    last_time_s: float
+    state: bytes
+
+
+@dataclass(slots=True)
+class StepResults:
+    """Everything one processing step produced for one robot, written atomically."""
+
+    robot_id: str
+    estimates: list[dict[str, Any]] = field(default_factory=list)  # time_s, parameter, value, std, identifiable
+    residual_aggregates: list[dict[str, Any]] = field(default_factory=list)
+    events: list[dict[str, Any]] = field(default_factory=list)
+    health: list[dict[str, Any]] = field(default_factory=list)
+    unmonitored: list[dict[str, Any]] = field(default_factory=list)
+    raw_batches: list[dict[str, Any]] = field(default_factory=list)
+    checkpoint: Checkpoint | None = None
+
+    def row_count(self) -> int:
+        return sum(
+            len(rows)
+            for rows in (
+                self.estimates,
+                self.residual_aggregates,
+                self.events,
+                self.health,
+                self.unmonitored,
+                self.raw_batches,
+            )
+        )
+
+
+class SqlStore:
+    """The store on one database URL (SQLite file, or PostgreSQL)."""
+
+    def __init__(self, url: str, *, migrate_schema: bool = True) -> None:
+        self.url = url
+        self.engine = create_engine(url)
+        try:
+            if migrate_schema:
+                migrate(self.engine)
+            elif current_revision(self.engine) != head_revision():
+                raise ConfigurationError(
+                    f"database schema is at {current_revision(self.engine)!r}, this shadow needs {head_revision()!r}: "
+                    "run the service once with migrations enabled"
+                )
+        except sa.exc.OperationalError as exc:
+            raise StoreUnavailableError(
+                f"database {self.engine.url.render_as_string()} unreachable: {exc.orig}"
+            ) from exc
+
+    def close(self) -> None:
+        self.engine.dispose()
+
+    # --- write side -----------------------------------------------------------------------------
+    def register_robot(self, robot_id: str, *, family: str, n_actuators: int, description_source: str = "") -> None:
+        """Insert the robot, or update its family and size if it is known already."""
+        site, cell, name = split_robot_id(robot_id)
+        row = {
+            "robot_id": robot_id,
+            "site": site,
+            "cell": cell,
+            "name": name,
+            "family": family,
+            "n_actuators": n_actuators,
+            "description_source": description_source,
+            "registered_at_s": time.time(),
+        }
+        with self._begin() as conn:
+            existing = conn.execute(sa.select(schema.robots.c.robot_id).where(schema.robots.c.robot_id == robot_id))
+            if existing.first() is None:
+                conn.execute(schema.robots.insert(), row)
+            else:
+                conn.execute(
+                    schema.robots.update()
+                    .where(schema.robots.c.robot_id == robot_id)
+                    .values(family=family, n_actuators=n_actuators, description_source=description_source)
+                )
+
+    def write_step(self, results: StepResults) -> None:
+        """Write one step's rows and its checkpoint in one transaction."""
+        rid = results.robot_id
+        with self._begin() as conn:
+            for table, rows in (
+                (schema.estimates, results.estimates),
+                (schema.residual_aggregates, results.residual_aggregates),
+                (schema.events, results.events),
+                (schema.health_snapshots, results.health),
+                (schema.unmonitored_intervals, results.unmonitored),
+                (schema.raw_batches, results.raw_batches),
+            ):
+                if rows:
+                    conn.execute(table.insert(), _uniform_rows(table, rid, rows))
+            if results.checkpoint is not None:
+                self._upsert_checkpoint(conn, results.checkpoint)
+
+    def write_dead_letters(self, letters: Iterable[dict[str, Any]]) -> int:
+        """Record rejected messages: received_at_s, topic, robot_id, reason_code, reason, payload (bytes)."""
+        rows = [
+            {
+                "received_at_s": d["received_at_s"],
+                "topic": d["topic"][:400],
+                "robot_id": d.get("robot_id"),
+                "reason_code": d["reason_code"][:32],
+                "reason": d["reason"],
+                "payload_size": len(d["payload"]),
+                "payload_head": bytes(d["payload"][:DEAD_LETTER_HEAD_BYTES]),
+            }
+            for d in letters
+        ]
+        if rows:
+            with self._begin() as conn:
+                conn.execute(schema.dead_letters.insert(), rows)
+        return len(rows)
+
+    def prune_raw_batches(self, robot_id: str, *, older_than_s: float) -> int:
+        """Rolling retention of raw samples: delete the batches that ended before ``older_than_s``."""
+        with self._begin() as conn:
+            result = conn.execute(
+                schema.raw_batches.delete().where(
+                    schema.raw_batches.c.robot_id == robot_id, schema.raw_batches.c.last_time_s < older_than_s
+                )
+            )
+            return int(result.rowcount or 0)
+
+    def _upsert_checkpoint(self, conn: sa.Connection, cp: Checkpoint) -> None:
+        values = {
+            "last_seq": cp.last_seq,
+            "last_time_s": cp.last_time_s,
+            "state": cp.state,
+            "written_at_s": time.time(),
+        }
+        updated = conn.execute(
+            schema.checkpoints.update().where(schema.checkpoints.c.robot_id == cp.robot_id).values(**values)
+        )
+        if not updated.rowcount:
+            conn.execute(schema.checkpoints.insert(), {"robot_id": cp.robot_id, **values})
+
+    def _begin(self) -> _Transaction:
+        return _Transaction(self.engine)
+
+    # --- read side ------------------------------------------------------------------------------
+    def robots(self) -> list[dict[str, Any]]:
+        with self.engine.connect() as conn:
+            rows = conn.execute(sa.select(schema.robots).order_by(schema.robots.c.robot_id))
+            return [dict(r._mapping) for r in rows]
+
+    def checkpoint(self, robot_id: str) -> Checkpoint | None:
+        with self.engine.connect() as conn:
+            row = conn.execute(sa.select(schema.checkpoints).where(schema.checkpoints.c.robot_id == robot_id)).first()
+        if row is None:
+            return None
+        return Checkpoint(robot_id, int(row.last_seq), float(row.last_time_s), bytes(row.state))
+
+    def estimates(
+        self,
+        robot_id: str,
+        *,
+        start_s: float,
+        end_s: float,
+        parameters: Sequence[str] | None = None,
+        limit: int = 10_000,
+    ) -> list[dict[str, Any]]:
+        t = schema.estimates
+        query = sa.select(t).where(t.c.robot_id == robot_id, t.c.time_s >= start_s, t.c.time_s < end_s)
+        if parameters:
+            query = query.where(t.c.parameter.in_(list(parameters)))
+        with self.engine.connect() as conn:
+            rows = conn.execute(query.order_by(t.c.time_s, t.c.parameter).limit(limit))
+            return [dict(r._mapping) for r in rows]
+
+    def residual_aggregates(
+        self, robot_id: str, *, start_s: float, end_s: float, limit: int = 10_000
+    ) -> list[dict[str, Any]]:
+        t = schema.residual_aggregates
+        query = sa.select(t).where(t.c.robot_id == robot_id, t.c.time_s >= start_s, t.c.time_s < end_s)
+        with self.engine.connect() as conn:
+            rows = conn.execute(query.order_by(t.c.time_s, t.c.actuator).limit(limit))
+            return [dict(r._mapping) for r in rows]
+
+    def events(
+        self,
+        *,
+        robot_id: str | None = None,
+        kind: str | None = None,
+        start_s: float | None = None,
+        end_s: float | None = None,
+        limit: int = 1000,
+    ) -> list[dict[str, Any]]:
+        t = schema.events
+        query = sa.select(*[c for c in t.c if c.name != "evidence"])
+        if robot_id is not None:
+            query = query.where(t.c.robot_id == robot_id)
+        if kind is not None:
+            query = query.where(t.c.kind == kind)
+        if start_s is not None:
+            query = query.where(t.c.start_s >= start_s)
+        if end_s is not None:
+            query = query.where(t.c.start_s < end_s)
+        with self.engine.connect() as conn:
+            rows = conn.execute(query.order_by(t.c.start_s, t.c.event_id).limit(limit))
+            return [dict(r._mapping) for r in rows]
+
+    def event(self, event_id: int) -> dict[str, Any] | None:
+        with self.engine.connect() as conn:
+            row = conn.execute(sa.select(schema.events).where(schema.events.c.event_id == event_id)).first()
+        return None if row is None else dict(row._mapping)
+
+    def latest_health(self, robot_id: str) -> list[dict[str, Any]]:
+        """The newest snapshot of each scope (robot and every actuator)."""
+        t = schema.health_snapshots
+        newest = (
+            sa.select(t.c.scope, sa.func.max(t.c.time_s).label("time_s"))
+            .where(t.c.robot_id == robot_id)
+            .group_by(t.c.scope)
+            .subquery()
+        )
+        query = sa.select(t).join(newest, sa.and_(t.c.scope == newest.c.scope, t.c.time_s == newest.c.time_s))
+        with self.engine.connect() as conn:
+            rows = conn.execute(query.where(t.c.robot_id == robot_id).order_by(t.c.scope))
+            return [dict(r._mapping) for r in rows]
+
+    def unmonitored_intervals(self, robot_id: str, *, start_s: float, end_s: float) -> list[dict[str, Any]]:
+        t = schema.unmonitored_intervals
+        query = sa.select(t).where(t.c.robot_id == robot_id, t.c.end_s >= start_s, t.c.start_s < end_s)
+        with self.engine.connect() as conn:
+            return [dict(r._mapping) for r in conn.execute(query.order_by(t.c.start_s))]
+
+    def raw_batches(self, robot_id: str, *, start_s: float, end_s: float) -> list[dict[str, Any]]:
+        t = schema.raw_batches
+        query = sa.select(t).where(t.c.robot_id == robot_id, t.c.last_time_s >= start_s, t.c.first_time_s < end_s)
+        with self.engine.connect() as conn:
+            return [dict(r._mapping) for r in conn.execute(query.order_by(t.c.seq))]
+
+    def dead_letter_counts(self) -> dict[str, int]:
+        t = schema.dead_letters
+        with self.engine.connect() as conn:
+            rows = conn.execute(sa.select(t.c.reason_code, sa.func.count()).group_by(t.c.reason_code))
+            return {str(code): int(n) for code, n in rows}
+
+    def dead_letters(self, *, limit: int = 100) -> list[dict[str, Any]]:
+        t = schema.dead_letters
+        with self.engine.connect() as conn:
+            rows = conn.execute(sa.select(t).order_by(t.c.dead_letter_id.desc()).limit(limit))
+            return [dict(r._mapping) for r in rows]
+
+
+class _Transaction:
+    """``engine.begin()`` that turns a lost database into :class:`StoreUnavailableError`."""
+
+    def __init__(self, engine: sa.Engine) -> None:
+        self._engine = engine
+        self._cm: Any = None
+
+    def __enter__(self) -> sa.Connection:
+        try:
+            self._cm = self._engine.begin()
+            return self._cm.__enter__()
+        except (sa.exc.OperationalError, sa.exc.InterfaceError) as exc:
+            raise StoreUnavailableError(f"database unreachable: {exc.orig}") from exc
+
+    def __exit__(self, exc_type: Any, exc: BaseException | None, tb: Any) -> None:
+        lost = (sa.exc.OperationalError, sa.exc.InterfaceError)
+        try:
+            self._cm.__exit__(exc_type, exc, tb)  # commits, or rolls back when the body raised
+        except lost as commit_error:
+            raise StoreUnavailableError(
+                f"database write failed, nothing of it kept: {commit_error.orig}"
+            ) from commit_error
+        if isinstance(exc, lost):
+            raise StoreUnavailableError(f"database write failed, nothing of it kept: {exc.orig}") from exc
+
+
+def _uniform_rows(table: sa.Table, robot_id: str, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Give every row the same keys (executemany needs them); missing optional columns become NULL."""
+    keys = {k for r in rows for k in r}
+    unknown = keys - set(table.c.keys())
+    if unknown:
+        raise ConfigurationError(f"{table.name}: unknown columns {sorted(unknown)}")
+    filler = {
+        c.name: (c.default.arg if c.default is not None and c.default.is_scalar else None)
+        for c in table.c
+        if c.name in keys and (c.nullable or c.default is not None)
+    }
+    return [{"robot_id": robot_id, **filler, **r} for r in rows]
+
+
+def split_robot_id(robot_id: str) -> tuple[str, str, str]:
+    """``"site/cell/robot"`` into its parts; every part non-empty."""
+    parts = robot_id.split("/")
+    if len(parts) != 3 or not all(parts):
+        raise ConfigurationError(f"robot id {robot_id!r}: must be 'site/cell/robot'")
+    return parts[0], parts[1], parts[2]
