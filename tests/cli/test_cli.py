@@ -38,7 +38,7 @@ def test_every_registered_command_has_help() -> None:
 
 
 def test_unknown_option_fails_with_a_clear_error() -> None:
-    result = run_cli("--no-such-option")
+    result = run_cli("demo", "--no-such-option")
     assert result.returncode == 2
     assert "unrecognized arguments: --no-such-option" in result.stderr
 
