@@ -1,0 +1,288 @@
+"""Live payload and friction tracker on the real delta and hexapod models, and the baseline record."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose, assert_array_equal
+
+from shadow.errors import ConfigurationError, ShapeError
+from shadow.estimation.baseline import Baseline
+from shadow.estimation.conditioning import REASON_GAP
+from shadow.estimation.state import pack_state, unpack_state
+from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
+from shadow.robots.delta import DeltaModel
+from shadow.robots.description import build_model, example_paths, load_description
+from shadow.robots.drives import current_loop_lag
+from shadow.robots.friction import friction_effort
+from shadow.robots.hexapod import HexapodModel
+
+DT_S = 1.0e-3
+SMOOTH_VELOCITY = 0.01  # rad/s
+TOOL_KG, WORK_KG = 0.35, 0.25  # demo values of the example delta
+THETA_F = np.tile([0.8, 0.15, 0.05], 3)  # demo friction: Coulomb [N m], viscous [N m s/rad], offset [N m]
+SIGMA_NM = 0.05  # demo measurement noise
+BANDWIDTH_HZ = np.full(3, 50.0)  # a slow current loop, so that the lag matters
+
+
+@pytest.fixture(scope="module")
+def delta() -> DeltaModel:
+    path = next(p for p in example_paths() if "delta" in p.name)
+    model = build_model(load_description(path))
+    assert isinstance(model, DeltaModel)
+    return model
+
+
+def delta_motion(model: DeltaModel, duration_s: float, t0_s: float = 0.0) -> tuple[np.ndarray, ...]:
+    t = t0_s + np.arange(int(round(duration_s / DT_S))) * DT_S
+    q0 = model.inverse_kinematics(np.array([[0.0, 0.0, -0.8]]))[0]
+    w = 2 * np.pi * np.array([0.7, 1.1, 1.3])
+    a = np.array([0.3, 0.25, 0.35])
+    phase = np.outer(t, w) + np.array([0.0, 1.0, 2.0])
+    return t, q0 + a * np.sin(phase), a * w * np.cos(phase), -a * w**2 * np.sin(phase)
+
+
+def delta_stream(model: DeltaModel, rng: np.random.Generator, duration_s: float, *, lag: bool = True):
+    t, q, qd, qdd = delta_motion(model, duration_s)
+    grip = np.floor(t / 0.7) % 2 == 1  # picks every 1.4 s
+    tau_known, y_p = model.rigid_regressor(q, qd, qdd)
+    tau = tau_known + y_p[:, :, 0] * (TOOL_KG + WORK_KG * grip)[:, None]  # tau = tau_known + Y_p theta_p
+    tau = tau + friction_effort(qd, THETA_F, smooth_velocity=SMOOTH_VELOCITY)
+    if lag:
+        tau = current_loop_lag(tau, np.full(t.size, DT_S), BANDWIDTH_HZ)
+    return t, q, tau + SIGMA_NM * rng.normal(size=tau.shape), grip
+
+
+def delta_baseline() -> Baseline:
+    return Baseline(
+        friction_parameters=THETA_F * 1.3,
+        friction_covariance=np.diag((0.3 * THETA_F + 0.01) ** 2),
+        noise_std=np.full(3, 0.1),
+        tool_mass_kg=0.3,
+        work_piece_mass_kg=0.2,
+    )
+
+
+def delta_settings(**changes: object) -> TrackerSettings:
+    s = TrackerSettings(
+        half_window=10,
+        poly_order=3,
+        max_gap_s=0.01,
+        output_period_s=1.0,
+        smooth_velocity=SMOOTH_VELOCITY,
+        payload_prior_std=np.array([1.0, 1.0]),
+        payload_walk_std=np.array([1e-3, 1e-3]),
+        friction_walk_std=np.full(3, 1e-3),
+        payload_resolution=np.array([0.05, 0.05]),
+        friction_resolution=np.full(3, 0.05),
+        current_loop_bandwidth_hz=BANDWIDTH_HZ,
+        noise_time_constant_s=5.0,
+        n_temperatures=1,
+    )
+    return dataclasses.replace(s, **changes)
+
+
+def outputs_equal(a: list[TrackerOutput], b: list[TrackerOutput], *, rtol: float = 0.0) -> None:
+    assert len(a) == len(b)
+    for oa, ob in zip(a, b, strict=True):
+        for f in ("t", "x", "std", "prior_residual", "posterior_residual", "noise_std", "temperature_mean"):
+            assert_allclose(getattr(oa, f), getattr(ob, f), rtol=rtol, atol=0.0, err_msg=f)
+        assert_array_equal(oa.identifiable, ob.identifiable)
+        assert oa.restarts == ob.restarts and oa.dof == ob.dof
+
+
+def test_delta_recovers_injected_payload_and_friction(delta: DeltaModel, rng: np.random.Generator) -> None:
+    # truth: the values injected into the rigid model's efforts (STYLE.md 10, equivalence with the simulation)
+    t, q, effort, grip = delta_stream(delta, rng, 12.0)
+    tracker = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    outputs = tracker.process(t, q, effort, tool_gripping=grip, temperatures=np.full((t.size, 1), 31.0))
+    assert len(outputs) == 11  # 12 periods, the last still pending
+    last = outputs[-1]
+    truth = np.concatenate([[TOOL_KG, WORK_KG], THETA_F])
+    assert last.parameter_names[:3] == ("tool_mass", "work_piece_mass", "coulomb_1")
+    assert_allclose(last.x, truth, rtol=0.03, atol=0.006)
+    assert last.identifiable.all() and not last.out_of_bounds.any()
+    assert_allclose(last.temperature_mean, [31.0], rtol=1e-12)
+    assert 0.3 < last.gripping_fraction < 0.7
+    assert last.noise_std[0] < 0.1  # adaptive R moving from the baseline's 0.1 toward the true 0.05
+
+
+def test_lag_compensation_removes_bias(delta: DeltaModel, rng: np.random.Generator) -> None:
+    # the same lagged data without compensation leaves a larger residual: the lag is a real model term
+    t, q, effort, grip = delta_stream(delta, rng, 6.0)
+    with_lag = PayloadFrictionTracker(delta, delta_settings(noise_time_constant_s=None), delta_baseline())
+    without = PayloadFrictionTracker(
+        delta, delta_settings(noise_time_constant_s=None, current_loop_bandwidth_hz=None), delta_baseline()
+    )
+    r_with = with_lag.process(t, q, effort, tool_gripping=grip)[-1].posterior_residual
+    r_without = without.process(t, q, effort, tool_gripping=grip)[-1].posterior_residual
+    rms_with = np.sqrt(np.mean(r_with**2))
+    assert rms_with < 1.3 * SIGMA_NM  # close to the injected noise
+    assert np.sqrt(np.mean(r_without**2)) > 1.5 * rms_with
+
+
+def test_without_gripping_signal_work_piece_not_identifiable(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, effort, _ = delta_stream(delta, rng, 3.0)
+    tracker = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    out = tracker.process(t, q, effort)[-1]
+    assert not out.identifiable[1] and out.identifiable[0]
+    assert_allclose(out.std[1], 1.0, rtol=0.01)  # prior std plus a little random walk, no information
+
+
+def test_standstill_does_not_excite_coulomb_or_viscous(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, _, _ = delta_motion(delta, 2.5)
+    q = np.broadcast_to(q[:1], q.shape).copy()  # robot at rest
+    tau_known, y_p = delta.rigid_regressor(q, np.zeros_like(q), np.zeros_like(q))
+    effort = tau_known + TOOL_KG * y_p[:, :, 0] + THETA_F[2::3] + SIGMA_NM * rng.normal(size=q.shape)
+    out = PayloadFrictionTracker(delta, delta_settings(), delta_baseline()).process(t, q, effort)[-1]
+    names = out.parameter_names
+    for i, name in enumerate(names):
+        if name.startswith(("coulomb", "viscous")):
+            assert not out.identifiable[i], name
+
+
+def test_split_invariance(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, effort, grip = delta_stream(delta, rng, 3.5)
+    whole = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    ref = whole.process(t, q, effort, tool_gripping=grip) + whole.flush()
+    chunked = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    cuts = np.unique(np.concatenate([[0, 1, 2, 5], rng.integers(0, t.size, 25), [t.size]]))
+    out = []
+    for a, b in zip(cuts[:-1], cuts[1:], strict=True):
+        out += chunked.process(t[a:b], q[a:b], effort[a:b], tool_gripping=grip[a:b])
+    out += chunked.flush()
+    outputs_equal(out, ref, rtol=1e-12)
+
+
+def test_save_restore_continues_bit_identically(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, effort, grip = delta_stream(delta, rng, 4.0)
+    t[2500:] += 0.2  # a gap, so that a restart is pending at the save
+    a = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    a.process(t[:2600], q[:2600], effort[:2600], tool_gripping=grip[:2600])
+    b = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    b.restore_state({k: np.array(v, copy=True) for k, v in a.save_state().items()})
+    rest = (t[2600:], q[2600:], effort[2600:])
+    out_a = a.process(*rest, tool_gripping=grip[2600:]) + a.flush()
+    out_b = b.process(*rest, tool_gripping=grip[2600:]) + b.flush()
+    outputs_equal(out_b, out_a)
+    assert [r.reason for r in out_a[0].restarts] == [REASON_GAP]
+    assert_array_equal(b.filter.state.P, a.filter.state.P)
+
+
+def test_state_through_bytes_continues_bit_identically(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, effort, grip = delta_stream(delta, rng, 2.5)
+    a = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    a.process(t[:1234], q[:1234], effort[:1234], tool_gripping=grip[:1234])
+    saved = a.save_state()
+    back = unpack_state(pack_state(saved))
+    assert back.keys() == saved.keys()
+    for k, v in saved.items():
+        assert back[k].dtype == v.dtype and back[k].shape == v.shape, k
+        assert_array_equal(back[k], v, err_msg=k)
+    b = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    b.restore_state(back)
+    rest = (t[1234:], q[1234:], effort[1234:])
+    outputs_equal(b.process(*rest, tool_gripping=grip[1234:]), a.process(*rest, tool_gripping=grip[1234:]))
+
+
+def test_state_bytes_reject_damage() -> None:
+    data = pack_state({"x": np.arange(3.0), "flag": np.array(True), "empty": np.zeros((0, 3))})
+    assert_array_equal(unpack_state(data)["empty"], np.zeros((0, 3)))
+    with pytest.raises(ConfigurationError, match="truncated"):
+        unpack_state(data[:-1])
+    with pytest.raises(ConfigurationError, match="trailing"):
+        unpack_state(data + b"\0")
+    with pytest.raises(ConfigurationError, match="header"):
+        unpack_state(b"something else")
+    with pytest.raises(ConfigurationError, match="dtype"):
+        pack_state({"names": np.array(["a", "b"])})
+
+
+def test_error_leaves_tracker_unchanged(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, effort, grip = delta_stream(delta, rng, 1.5)
+    tracker = PayloadFrictionTracker(delta, delta_settings(), delta_baseline())
+    tracker.process(t[:700], q[:700], effort[:700], tool_gripping=grip[:700])
+    before = tracker.save_state()
+    with pytest.raises(ShapeError, match="q: expected shape"):
+        tracker.process(t[700:], q[700:, :2], effort[700:])
+    after = tracker.save_state()
+    assert before.keys() == after.keys()
+    for k in before:
+        assert_array_equal(after[k], before[k], err_msg=k)
+
+
+def test_rejects_inconsistent_settings(delta: DeltaModel) -> None:
+    with pytest.raises(ConfigurationError, match="payload_prior_std"):
+        PayloadFrictionTracker(delta, delta_settings(payload_prior_std=np.ones(3)), delta_baseline())
+    with pytest.raises(ConfigurationError, match="current_loop_bandwidth_hz"):
+        PayloadFrictionTracker(delta, delta_settings(current_loop_bandwidth_hz=np.zeros(3)), delta_baseline())
+    with pytest.raises(ConfigurationError, match="friction_parameters"):
+        PayloadFrictionTracker(delta, delta_settings(stribeck_velocity=0.05), delta_baseline())
+
+
+def test_hexapod_tracks_ten_payload_parameters(rng: np.random.Generator) -> None:
+    path = next(p for p in example_paths() if "hexapod" in p.name)
+    desc = load_description(path)
+    model = build_model(desc)
+    assert isinstance(model, HexapodModel)
+    theta_p = desc.tool.payload_parameters()
+    q_home = model.inverse_kinematics(np.asarray(desc.home_position_m)[None, :], np.eye(3)[None])[0]
+    dt = 2.0e-3
+    t = np.arange(2000) * dt
+    w = 2 * np.pi * np.array([0.9, 1.3, 1.7, 2.1, 2.3, 2.9])
+    a = 0.015
+    phase = np.outer(t, w) + np.arange(6)
+    q, qd, qdd = q_home + a * np.sin(phase), a * w * np.cos(phase), -a * w**2 * np.sin(phase)
+    theta_f = np.tile([25.0, 400.0, 2.0], 6)  # demo friction [N, N s/m, N]
+    effort = model.inverse_dynamics(q, qd, qdd, theta_p) + friction_effort(qd, theta_f, smooth_velocity=5e-4)
+    effort += 0.5 * rng.normal(size=effort.shape)
+    baseline = Baseline(
+        friction_parameters=theta_f,
+        friction_covariance=np.diag((0.1 * theta_f) ** 2),
+        noise_std=np.full(6, 0.5),
+        tool_mass_kg=3.0,
+        work_piece_mass_kg=0.0,
+    )
+    settings = TrackerSettings(
+        half_window=6,
+        poly_order=4,  # the legs' reflected rotor inertia (~300 kg) makes qdd errors of a cubic fit visible
+        max_gap_s=0.02,
+        output_period_s=1.0,
+        smooth_velocity=5e-4,
+        payload_prior_std=np.array([2.0, 0.2, 0.2, 0.2, 0.05, 0.05, 0.05, 0.05, 0.05, 0.05]),
+        payload_walk_std=np.full(10, 1e-4),
+        friction_walk_std=np.array([0.1, 1.0, 0.1]),
+        payload_resolution=np.array([0.1, 0.01, 0.01, 0.01, 0.01, 0.01, 0.01, 0.01, 0.01, 0.01]),
+        friction_resolution=np.array([1.0, 10.0, 1.0]),
+    )
+    tracker = PayloadFrictionTracker(model, settings, baseline)
+    out = tracker.process(t, q, effort)[-1]
+    assert len(out.parameter_names) == 10 + 18 and out.parameter_names[0] == "payload_m"
+    assert abs(out.x[0] - theta_p[0]) < max(4 * out.std[0], 0.02)  # the mass is well excited by gravity
+    assert out.identifiable[0]
+    assert np.all(np.abs(out.x - np.concatenate([theta_p, theta_f])) < 5 * out.std + 1e-6)
+
+
+def test_baseline_round_trip_and_errors() -> None:
+    b = Baseline(
+        friction_parameters=np.arange(6.0),
+        friction_covariance=np.eye(6),
+        noise_std=np.ones(2),
+        tool_mass_kg=1.0,
+        work_piece_mass_kg=0.5,
+        payload_parameters=np.arange(10.0),
+    )
+    back = Baseline.from_dict(b.to_dict())
+    for f in ("friction_parameters", "friction_covariance", "noise_std", "payload_parameters"):
+        assert_array_equal(getattr(back, f), getattr(b, f))
+    assert (back.tool_mass_kg, back.work_piece_mass_kg) == (1.0, 0.5)
+    d = b.to_dict()
+    del d["noise_std"]
+    with pytest.raises(ConfigurationError, match="noise_std: missing"):
+        Baseline.from_dict(d)
+    with pytest.raises(ConfigurationError, match="friction_covariance: not positive definite"):
+        Baseline.from_dict({**b.to_dict(), "friction_covariance": (-np.eye(6)).tolist()})
+    with pytest.raises(ConfigurationError, match="tool_mass_kg: must be >= 0"):
+        Baseline.from_dict({**b.to_dict(), "tool_mass_kg": -1.0})
