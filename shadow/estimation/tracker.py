@@ -109,6 +109,10 @@ class TrackerOutput:
     gripping_fraction: float  # share of the batch's samples with the tool gripping
     temperature_mean: Array  # (n_temperatures,) mean of each temperature channel (NaN-aware)
     restarts: tuple[Restart, ...]  # conditioning restarts since the previous output
+    q: Array  # (K, n) conditioned (delayed, time-aligned) actuator positions of the batch
+    qd: Array  # (K, n) their Savitzky-Golay velocities
+    effort: Array  # (K, n) measured efforts aligned with q, qd [N m | N]
+    gripping: Array  # (K,) tool state aligned with q (1.0 gripping, 0.0 not)
 
     @property
     def n_samples(self) -> int:
@@ -238,7 +242,7 @@ class PayloadFrictionTracker:
         ----------
         t : (N,) sample times [s];  q : (N, n) actuator positions;  effort : (N, n) measured efforts (finite)
         tool_gripping : (N,) bool, True while the tool holds a work piece; None: not gripping
-        temperatures : (N, n_temperatures) [deg C], NaN allowed; None: all NaN
+        temperatures : (N, n_temperatures) drive temperatures [K], NaN allowed; None: all NaN
 
         On an error (bad shape, unreachable pose, ...) the tracker is left as it was before the call.
         """
@@ -356,6 +360,10 @@ class PayloadFrictionTracker:
             gripping_fraction=float(grip.mean()),
             temperature_mean=temp_mean,
             restarts=restarts,
+            q=s["q"].copy(),
+            qd=s["qd"].copy(),
+            effort=s["effort"].copy(),
+            gripping=grip.copy(),
         )
 
     # ------------------------------------------------------------------ state

@@ -1,0 +1,538 @@
+"""One robot's monitor: model -> estimator -> detectors, turning sample batches into store rows.
+
+Pure computation (no I/O, no clock: "now" is the newest sample time), so the live service, an offline
+analysis and the tests all run exactly the same code. Per batch of samples:
+
+1. efforts: measured joint-side efforts, or motor currents converted with the drive gains
+   (:func:`shadow.robots.drives.effort_from_current`);
+2. :class:`~shadow.estimation.tracker.PayloadFrictionTracker`: conditioning, rigid-body regressor,
+   batched Kalman filter; one output per ``output_period_s``;
+3. per output: estimate rows (value, std, identifiable), residual aggregates (RMS and peak of the
+   innovation per actuator, NIS per degree of freedom);
+4. collisions: :class:`~shadow.detection.momentum_observer.CollisionMonitor` on the conditioned samples,
+   with the friction estimated by the filter taken off the measured effort and the mass matrix at the
+   estimated payload; each event gets an evidence window of raw samples (default 1 s each side),
+   written once the stream has passed the window's end;
+5. health per actuator and for the robot (:mod:`shadow.detection.health`).
+
+Collision thresholds (per actuator): the observer is a first-order low-pass of gain K_O on the effort
+noise, so white effort noise of std sigma gives a residual of std
+``sigma_r = sigma sqrt((1 - a) / (1 + a))``, ``a = exp(-K_O dt)`` (variance of a first-order
+autoregression, e.g. Box and Jenkins, "Time Series Analysis", AR(1) variance; from memory). The threshold
+is ``z_(1 - alpha/2) sigma_r`` for the per-sample alpha that bounds false alarms to the configured rate
+(:func:`~shadow.detection.momentum_observer.alpha_for_false_alarm_rate`), plus a floor that absorbs
+what the rigid model leaves out (structural modes, Stribeck friction, backlash), as a fraction of
+the rated effort. Wear trends, payload-change detection and structural-mode tracking are run by the
+offline analysis for now; their live wiring is the next step (see the health reasons).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.stats import norm
+
+from shadow.detection.events import CollisionEvent
+from shadow.detection.health import Health, HealthLimits, actuator_health, robot_health
+from shadow.detection.momentum_observer import (
+    CollisionMonitor,
+    CollisionMonitorState,
+    CollisionSettings,
+    ObserverState,
+    alpha_for_false_alarm_rate,
+)
+from shadow.errors import ShadowError
+from shadow.estimation.baseline import Baseline
+from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
+from shadow.ingest.wire import PositionUnit, SampleBatch, encode_binary
+from shadow.robots.description import RobotDescription, build_model
+from shadow.robots.drives import effort_from_current
+from shadow.robots.friction import friction_effort
+from shadow.robots.parameters import MeasuredQuantity
+from shadow.store.repository import StepResults
+
+Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True, slots=True)
+class MonitorSettings:
+    """Knobs of a robot's monitor, SI units."""
+
+    tracker: TrackerSettings
+    sample_rate_hz: float = 1000.0  # nominal stream rate, for the false-alarm bound
+    observer_gain_per_s: float = 50.0  # K_O: residual time constant 1 / K_O = 20 ms
+    false_alarms_per_day: float = 1.0
+    threshold_floor_rated_fraction: float = 0.03  # model-error floor of the collision threshold
+    evidence_before_s: float = 1.0
+    evidence_after_s: float = 1.0
+    health_limits: HealthLimits = field(default_factory=HealthLimits)
+
+
+def nominal_baseline(description: RobotDescription) -> Baseline:
+    """A baseline from the description alone, for a robot not commissioned yet.
+
+    Friction from the description's nominal values (zero where none is declared) with a prior std of
+    half their size plus 2 % of the rated effort; noise 0.5 % of the rated effort. Commissioning
+    (``shadow commission``) replaces it with measured values.
+    """
+    drives = description.parameters.drives
+    rated = np.array([d.rated_effort for d in drives], dtype=float)
+    n = len(drives)
+    if description.friction is not None:
+        theta_f = description.friction.parameters()
+    else:
+        theta_f = np.zeros(3 * n)
+    scale = np.repeat(rated, 3) * np.tile([0.02, 0.002, 0.02], n)  # N m | N, per (rad/s | m/s), N m | N
+    std = 0.5 * np.abs(theta_f) + scale
+    tool = description.tool
+    if description.family == "delta":
+        return Baseline(
+            friction_parameters=theta_f,
+            friction_covariance=np.diag(std**2),
+            noise_std=0.005 * rated,
+            tool_mass_kg=tool.tool_mass_kg,  # type: ignore[union-attr]
+            work_piece_mass_kg=tool.work_piece_mass_kg,  # type: ignore[union-attr]
+        )
+    payload = tool.payload_parameters()
+    return Baseline(
+        friction_parameters=theta_f,
+        friction_covariance=np.diag(std**2),
+        noise_std=0.005 * rated,
+        tool_mass_kg=float(payload[0]),
+        work_piece_mass_kg=0.0,
+        payload_parameters=payload,
+    )
+
+
+def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1000.0) -> MonitorSettings:
+    """Settings that suit a 1 kHz stream of either family."""
+    drives = description.parameters.drives
+    n = len(drives)
+    delta = description.family == "delta"
+    smooth = description.friction.smooth_velocity if description.friction is not None else (0.02 if delta else 2e-4)
+    if delta:
+        payload_prior, payload_walk, payload_res = [0.5, 0.5], [1e-4, 1e-3], [0.01, 0.01]
+    else:  # mass, first moments, inertia about the platform origin
+        payload_prior = [2.0] + [0.2] * 3 + [0.05] * 6
+        payload_walk = [1e-4] + [1e-5] * 3 + [1e-6] * 6
+        payload_res = [0.05] + [0.01] * 3 + [0.005] * 6
+    rated = float(np.mean([d.rated_effort for d in drives]))
+    tracker = TrackerSettings(
+        half_window=10,
+        poly_order=3 if delta else 4,
+        max_gap_s=0.05,
+        output_period_s=1.0,
+        smooth_velocity=smooth,
+        payload_prior_std=np.array(payload_prior),
+        payload_walk_std=np.array(payload_walk),
+        friction_walk_std=np.array([1e-4, 1e-5, 1e-4]) * rated,
+        payload_resolution=np.array(payload_res),
+        friction_resolution=np.array([0.01, 0.002, 0.01]) * rated,
+        current_loop_bandwidth_hz=np.array([d.current_loop_bandwidth_hz for d in drives]),
+        noise_time_constant_s=60.0,
+        n_temperatures=n,
+    )
+    return MonitorSettings(tracker=tracker, sample_rate_hz=sample_rate_hz)
+
+
+def collision_thresholds(noise_std: Array, rated: Array, settings: MonitorSettings) -> Array:
+    """Per-actuator collision thresholds [N m | N], see the module docstring."""
+    dt = 1.0 / settings.sample_rate_hz
+    a = np.exp(-settings.observer_gain_per_s * dt)
+    sigma_r = noise_std * np.sqrt((1.0 - a) / (1.0 + a))  # AR(1) std of the observer residual
+    alpha = alpha_for_false_alarm_rate(settings.false_alarms_per_day / 24.0, settings.sample_rate_hz)
+    z = float(norm.isf(alpha / 2.0))  # two-sided Gaussian quantile
+    return z * sigma_r + settings.threshold_floor_rated_fraction * rated
+
+
+class RobotMonitor:
+    """Follows one robot; :meth:`process` takes its batches in sequence order."""
+
+    def __init__(
+        self,
+        robot_id: str,
+        description: RobotDescription,
+        baseline: Baseline | None = None,
+        settings: MonitorSettings | None = None,
+    ) -> None:
+        self.robot_id = robot_id
+        self.description = description
+        self.model = build_model(description)
+        self.baseline = baseline if baseline is not None else nominal_baseline(description)
+        self.settings = settings if settings is not None else default_settings(description)
+        self.tracker = PayloadFrictionTracker(self.model, self.settings.tracker, self.baseline)
+        drives = description.parameters.drives
+        self.n = len(drives)
+        self.rated = np.array([d.rated_effort for d in drives], dtype=float)
+        K_O = np.full(self.n, self.settings.observer_gain_per_s)
+        self.thresholds = collision_thresholds(self.baseline.noise_std, self.rated, self.settings)
+        self.collisions = CollisionMonitor(
+            K_O,
+            CollisionSettings(
+                threshold=self.thresholds,
+                rated_effort=self.rated,
+                evidence_before_s=self.settings.evidence_before_s,
+                evidence_after_s=self.settings.evidence_after_s,
+            ),
+            jacobian=self.model.platform_jacobian,
+        )
+        self.delta = description.family == "delta"
+        self.position_unit = PositionUnit.RAD if self.delta else PositionUnit.M
+        self._raw = _RawBuffer(self.n)
+        self._pending_events: list[CollisionEvent] = []
+        self._recent_collisions: list[CollisionEvent] = []
+        self._last_seq = 0
+
+    # ---------------------------------------------------------------- processing
+    def process(self, batch: SampleBatch) -> StepResults:
+        """Rows produced by one batch (possibly none until an output period completes)."""
+        return self.process_many([batch])
+
+    def process_many(self, batches: list[SampleBatch]) -> StepResults:
+        """Rows produced by consecutive batches, processed as one block.
+
+        The estimator's cost is mostly per call, so the service hands over all batches that arrived
+        together (a 10 ms message at 1 kHz holds only 10 samples). Batches whose optional signals
+        differ are processed one after the other.
+        """
+        snapshot = self.save_state()
+        results = StepResults(self.robot_id)
+        try:
+            for group in _same_layout_runs(batches):
+                results.extend(self._process_block(group))
+        except ShadowError:
+            self.restore_state(snapshot)  # all or nothing, so the caller may retry batch by batch
+            raise
+        return results
+
+    def _process_block(self, batches: list[SampleBatch]) -> StepResults:
+        drives = self.description.parameters.drives
+        t = np.concatenate([b.t for b in batches])
+        q = np.concatenate([b.q for b in batches])
+        effort = np.concatenate(
+            [b.effort if b.effort is not None else effort_from_current(b.current, drives) for b in batches]
+        )
+        first = batches[0]
+        gripping = None if first.gripping is None else np.concatenate([b.gripping for b in batches])  # type: ignore[misc]
+        temperature = (
+            None if first.temperature_k is None else np.concatenate([b.temperature_k for b in batches])  # type: ignore[misc]
+        )
+        self._raw.append(t, q, effort, gripping)
+        self._last_seq = batches[-1].seq
+        outputs = self.tracker.process(t, q, effort, tool_gripping=gripping, temperatures=temperature)
+        results = StepResults(self.robot_id)
+        for out in outputs:
+            self._rows_for(out, results)
+        self._release_events(float(t[-1]), results)
+        self._raw.trim(float(t[-1]) - self._raw_keep_s())
+        return results
+
+    def _raw_keep_s(self) -> float:
+        s = self.settings
+        return s.evidence_before_s + s.evidence_after_s + 2 * s.tracker.output_period_s + 10.0
+
+    def _theta_p(self, x: Array, gripping: Array) -> Array:
+        """Payload parameters per sample (K, p) from the filter state."""
+        if self.delta:
+            return (x[0] + x[1] * gripping)[:, None]  # tool + work piece while gripping
+        return np.broadcast_to(x[: self.tracker.n_payload], (gripping.shape[0], self.tracker.n_payload))
+
+    def _rows_for(self, out: TrackerOutput, results: StepResults) -> None:
+        t_end = float(out.t[-1])
+        for name, value, std, ok in zip(out.parameter_names, out.x, out.std, out.identifiable, strict=True):
+            results.estimates.append(
+                {"time_s": t_end, "parameter": name, "value": float(value), "std": float(std), "identifiable": bool(ok)}
+            )
+        innovation = out.prior_residual
+        rms = np.sqrt(np.mean(innovation**2, axis=0))
+        peak = np.max(np.abs(innovation), axis=0)
+        nis_per_dof = out.nis / out.dof if out.dof else float("nan")
+        for i in range(self.n):
+            results.residual_aggregates.append(
+                {
+                    "time_s": float(out.t[0]),
+                    "actuator": i,
+                    "window_s": float(out.t[-1] - out.t[0]),
+                    "n_samples": out.n_samples,
+                    "rms": float(rms[i]),
+                    "peak": float(peak[i]),
+                    "nis": float(nis_per_dof),
+                }
+            )
+        for restart in out.restarts:
+            results.unmonitored.append(
+                {
+                    "start_s": restart.t_s - max(restart.gap_s, 0.0),
+                    "end_s": restart.t_s,
+                    "cause": "conditioning_restart",
+                    "detail": f"{restart.reason}: step of {restart.gap_s:.3f} s",
+                }
+            )
+        self._collisions_for(out)
+        self._health_for(out, rms, t_end, results)
+
+    def _collisions_for(self, out: TrackerOutput) -> None:
+        n_pay = self.tracker.n_payload
+        x_f = out.x[n_pay:]
+        tau_f = friction_effort(
+            out.qd,
+            x_f,
+            smooth_velocity=self.settings.tracker.smooth_velocity,
+            stribeck_velocity=self.settings.tracker.stribeck_velocity,
+        )
+        theta = self._theta_p(out.x, out.gripping)
+        # the mass matrix and bias at each sample's own payload (the work piece comes and goes)
+        M = _per_sample_mass(self, out.q, theta) if self.delta else self.model.mass_matrix(out.q, theta[0])
+        beta = _momentum_bias(self, out.q, out.qd, theta)
+        _, events = self.collisions.update(out.t, out.effort - tau_f, M, beta, out.qd, out.q)
+        self._pending_events.extend(events)
+
+    def _release_events(self, t_now: float, results: StepResults) -> None:
+        keep = []
+        for event in self._pending_events:
+            if event.evidence_end_time_s > t_now:
+                keep.append(event)
+                continue
+            results.events.append(self._event_row(event))
+            self._recent_collisions.append(event)
+        self._pending_events = keep
+
+    def _event_row(self, e: CollisionEvent) -> dict[str, Any]:
+        evidence = self._raw.window(e.evidence_start_time_s, e.evidence_end_time_s)
+        blob = None
+        if evidence is not None:
+            t, q, eff, grip = evidence
+            blob = encode_binary(
+                SampleBatch(
+                    robot_id=self.robot_id.rsplit("/", 1)[-1],
+                    seq=self._last_seq,
+                    position_unit=self.position_unit,
+                    effort_kind=MeasuredQuantity.EFFORT,
+                    t=t,
+                    q=q,
+                    effort=eff,
+                    gripping=None if grip is None else grip.astype(bool),
+                )
+            )
+        force_key = "platform_force_n" if self.delta else "platform_wrench_n_nm"
+        rel = float(np.max(e.relative_peak))
+        return {
+            "kind": "collision",
+            "start_s": e.start_time_s,
+            "end_s": e.end_time_s,
+            "severity": "high" if rel >= self.settings.health_limits.collision_act_rated_fraction else "medium",
+            "summary": (
+                f"external effort on the platform, peak {100 * rel:.0f} % of rated on actuator "
+                f"{int(np.argmax(e.relative_peak)) + 1}, {1000 * e.duration_s:.0f} ms"
+            ),
+            "figures": {
+                "peak_residual_per_actuator": e.peak_residual.tolist(),
+                "relative_peak_per_actuator": e.relative_peak.tolist(),
+                force_key: e.external_wrench.tolist(),
+                "pose_actuator_positions": e.q_at_peak.tolist(),
+                "peak_time_s": e.peak_time_s,
+                "threshold_per_actuator": self.thresholds.tolist(),
+            },
+            "evidence_start_s": e.evidence_start_time_s,
+            "evidence_end_s": e.evidence_end_time_s,
+            "evidence": blob,
+            "source_seq": self._last_seq,
+        }
+
+    def _health_for(self, out: TrackerOutput, rms: Array, t_end: float, results: StepResults) -> None:
+        limits = self.settings.health_limits
+        wear = np.full(self.n, np.nan)  # live wear trend: next step (offline analysis has it)
+        actuators = actuator_health(rms, self.baseline.noise_std, wear, np.zeros(self.n), limits)
+        horizon = t_end - 3600.0
+        self._recent_collisions = [c for c in self._recent_collisions if c.end_time_s >= horizon]
+        deviation = float("nan")
+        if self.delta and out.identifiable[1] and self.baseline.work_piece_mass_kg > 0:
+            deviation = (float(out.x[1]) - self.baseline.work_piece_mass_kg) / self.baseline.work_piece_mass_kg
+        robot = robot_health(actuators, self._recent_collisions, deviation, 0.0, limits)
+        results.health.append(_health_row(t_end, "robot", robot))
+        for i, h in enumerate(actuators):
+            results.health.append(_health_row(t_end, f"actuator:{i}", h))
+
+    # ---------------------------------------------------------------- state
+    def save_state(self) -> dict[str, np.ndarray]:
+        """Everything the monitor carries, as arrays; :meth:`restore_state` resumes exactly."""
+        state = {f"tracker/{k}": np.asarray(v) for k, v in self.tracker.save_state().items()}
+        cs = self.collisions.save()
+        obs = cs.observer
+        state["collisions/has_observer"] = np.array(obs is not None)
+        if obs is not None:
+            state.update(
+                {
+                    "collisions/obs_t": np.array(obs.t_s),
+                    "collisions/obs_p": obs.p,
+                    "collisions/obs_u": obs.u,
+                    "collisions/obs_r": obs.r,
+                }  # fmt: skip
+            )
+        state["collisions/n_seen"] = np.array(cs.n_seen)
+        state["collisions/dt_nominal"] = np.array(cs.dt_nominal_s)
+        state["collisions/carry_index0"] = np.array(-1 if cs.carry_index0 is None else cs.carry_index0)
+        state["collisions/carry_t"], state["collisions/carry_r"], state["collisions/carry_q"] = (
+            cs.carry_t,
+            cs.carry_r,
+            cs.carry_q,
+        )
+        for name, events in (("pending", self._pending_events), ("recent", self._recent_collisions)):
+            state.update(_events_to_arrays(f"{name}/", events))
+        state.update(self._raw.save("raw/"))
+        state["last_seq"] = np.array(self._last_seq)
+        return state
+
+    def restore_state(self, state: dict[str, np.ndarray]) -> None:
+        self.tracker.restore_state({k[len("tracker/") :]: v for k, v in state.items() if k.startswith("tracker/")})
+        obs = None
+        if bool(state["collisions/has_observer"]):
+            obs = ObserverState(
+                float(state["collisions/obs_t"]),
+                state["collisions/obs_p"],
+                state["collisions/obs_u"],
+                state["collisions/obs_r"],
+            )
+        idx = int(state["collisions/carry_index0"])
+        self.collisions.restore(
+            CollisionMonitorState(
+                obs,
+                int(state["collisions/n_seen"]),
+                float(state["collisions/dt_nominal"]),
+                None if idx < 0 else idx,
+                state["collisions/carry_t"],
+                state["collisions/carry_r"],
+                state["collisions/carry_q"],
+            )
+        )
+        self._pending_events = _events_from_arrays("pending/", state)
+        self._recent_collisions = _events_from_arrays("recent/", state)
+        self._raw = _RawBuffer.restore(self.n, "raw/", state)
+        self._last_seq = int(state["last_seq"])
+
+
+def _same_layout_runs(batches: list[SampleBatch]) -> list[list[SampleBatch]]:
+    """Split into runs of batches that carry the same optional signals (so they can be concatenated)."""
+
+    def layout(b: SampleBatch) -> tuple[bool, ...]:
+        return (b.effort is None, b.gripping is None, b.temperature_k is None)
+
+    runs: list[list[SampleBatch]] = []
+    for b in batches:
+        if runs and layout(runs[-1][-1]) == layout(b):
+            runs[-1].append(b)
+        else:
+            runs.append([b])
+    return runs
+
+
+def _per_sample_mass(monitor: RobotMonitor, q: Array, theta: Array) -> Array:
+    """M(q) at each sample's payload: M is affine in theta_p, so two evaluations suffice (delta, p = 1)."""
+    M0 = monitor.model.mass_matrix(q, np.zeros(theta.shape[1]))
+    M1 = monitor.model.mass_matrix(q, np.ones(theta.shape[1]))
+    return M0 + (M1 - M0) * theta[:, 0][:, None, None]
+
+
+def _momentum_bias(monitor: RobotMonitor, q: Array, qd: Array, theta: Array) -> Array:
+    """beta = h - dM/dt qd at each sample's payload (affine in theta_p, as M)."""
+    p = theta.shape[1]
+
+    def beta_at(th: Array) -> Array:
+        h = monitor.model.bias_efforts(q, qd, th)
+        Md = monitor.model.mass_matrix_rate(q, qd, th)
+        return h - np.einsum("nij,nj->ni", Md, qd)  # beta = h - dM/dt qd
+
+    if p == 1:
+        b0, b1 = beta_at(np.zeros(1)), beta_at(np.ones(1))
+        return b0 + (b1 - b0) * theta[:, :1]
+    return beta_at(theta[0])
+
+
+def _health_row(t: float, scope: str, h: Health) -> dict[str, Any]:
+    return {
+        "time_s": t,
+        "scope": scope,
+        "state": h.state.value,
+        "reasons": list(h.reasons),
+        "figures": {k: (None if not np.isfinite(v) else float(v)) for k, v in h.figures.items()},
+    }
+
+
+_EVENT_SCALARS = (
+    "start_index", "end_index", "start_time_s", "end_time_s", "peak_index", "peak_time_s", "wrench_misfit",
+    "evidence_start_time_s", "evidence_end_time_s", "evidence_start_index", "evidence_end_index",
+)  # fmt: skip
+_EVENT_VECTORS = ("peak_residual", "residual_at_peak", "q_at_peak", "external_wrench", "relative_peak")
+
+
+def _events_to_arrays(prefix: str, events: list[CollisionEvent]) -> dict[str, np.ndarray]:
+    out = {f"{prefix}count": np.array(len(events))}
+    for k in _EVENT_SCALARS:
+        out[f"{prefix}{k}"] = np.array([float(getattr(e, k)) for e in events])
+    for k in _EVENT_VECTORS:
+        out[f"{prefix}{k}"] = np.array([getattr(e, k) for e in events]) if events else np.zeros((0, 0))
+    return out
+
+
+def _events_from_arrays(prefix: str, state: dict[str, np.ndarray]) -> list[CollisionEvent]:
+    events = []
+    for i in range(int(state[f"{prefix}count"])):
+        kwargs: dict[str, Any] = {}
+        for k in _EVENT_SCALARS:
+            v = float(state[f"{prefix}{k}"][i])
+            kwargs[k] = int(v) if k.endswith("_index") else v
+        for k in _EVENT_VECTORS:
+            kwargs[k] = np.asarray(state[f"{prefix}{k}"][i], dtype=float)
+        events.append(CollisionEvent(**kwargs))
+    return events
+
+
+class _RawBuffer:
+    """The last seconds of raw samples, for evidence windows."""
+
+    def __init__(self, n: int) -> None:
+        self.t = np.zeros(0)
+        self.q = np.zeros((0, n))
+        self.effort = np.zeros((0, n))
+        self.gripping = np.zeros(0)
+        self.has_gripping = False
+
+    def append(self, t: Array, q: Array, effort: Array, gripping: NDArray[np.bool_] | None) -> None:
+        self.t = np.concatenate([self.t, t])
+        self.q = np.concatenate([self.q, q])
+        self.effort = np.concatenate([self.effort, effort])
+        g = np.zeros(t.shape[0]) if gripping is None else gripping.astype(float)
+        self.has_gripping = self.has_gripping or gripping is not None
+        self.gripping = np.concatenate([self.gripping, g])
+
+    def trim(self, before_s: float) -> None:
+        k = int(np.searchsorted(self.t, before_s))
+        self.t, self.q, self.effort, self.gripping = self.t[k:], self.q[k:], self.effort[k:], self.gripping[k:]
+
+    def window(self, start_s: float, end_s: float) -> tuple[Array, Array, Array, Array | None] | None:
+        a, b = int(np.searchsorted(self.t, start_s)), int(np.searchsorted(self.t, end_s, side="right"))
+        if b <= a:
+            return None
+        return self.t[a:b], self.q[a:b], self.effort[a:b], self.gripping[a:b] if self.has_gripping else None
+
+    def save(self, prefix: str) -> dict[str, np.ndarray]:
+        return {
+            f"{prefix}t": self.t,
+            f"{prefix}q": self.q,
+            f"{prefix}effort": self.effort,
+            f"{prefix}gripping": self.gripping,
+            f"{prefix}has_gripping": np.array(self.has_gripping),
+        }
+
+    @classmethod
+    def restore(cls, n: int, prefix: str, state: dict[str, np.ndarray]) -> _RawBuffer:
+        buf = cls(n)
+        buf.t = state[f"{prefix}t"]
+        buf.q = state[f"{prefix}q"].reshape(-1, n)
+        buf.effort = state[f"{prefix}effort"].reshape(-1, n)
+        buf.gripping = state[f"{prefix}gripping"]
+        buf.has_gripping = bool(state[f"{prefix}has_gripping"])
+        return buf

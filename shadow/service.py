@@ -1,0 +1,361 @@
+"""The service: the one place where ingest, the numerical core and the store meet.
+
+Per robot: a persistent MQTT session (:class:`shadow.ingest.mqtt.RobotSubscription`) fills a bounded
+inbox; one pipeline thread drains every robot's inbox in turn, decodes and validates each message
+(bad ones become dead letters), puts the batches in sequence order (:class:`SequenceTracker`: duplicates
+dropped, small reorderings repaired, gaps recorded as unmonitored intervals), runs the robot's monitor
+(model -> estimator -> detectors) and writes the step's rows with the new checkpoint in one transaction.
+Only then are the step's messages acknowledged to the broker, in arrival order. So:
+
+* a crash loses nothing accepted: unacknowledged messages come again and the checkpoint says where the
+  results stopped, so they are neither lost nor doubled;
+* a database outage stops acknowledgements; the broker then holds the robot's messages (its in-flight
+  window and queue are the bound) and the service writes the results it kept in memory once the
+  database is back. The outage is counted in :class:`ServiceStatus`.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import logging
+import queue
+import threading
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+
+from shadow.errors import RejectedMessageError, ShadowError
+from shadow.ingest.mqtt import MqttSettings, ReceivedMessage, RobotSubscription
+from shadow.ingest.topics import RobotAddress, TopicKind, TopicLayout, check_sender
+from shadow.ingest.wire import (
+    Dropped,
+    Gap,
+    PlausibilityLimits,
+    Released,
+    Restart,
+    SampleBatch,
+    SequenceTracker,
+    TrackerState,
+    decode_message,
+    encode_binary,
+)
+from shadow.store.repository import Checkpoint, SqlStore, StepResults, StoreUnavailableError
+
+log = logging.getLogger(__name__)
+
+CHECKPOINT_FORMAT = 1
+
+
+class Monitor(Protocol):
+    """What the service needs from a robot's monitor (model -> estimator -> detectors), see shadow.monitoring."""
+
+    def process_many(self, batches: list[SampleBatch]) -> StepResults: ...
+
+    def process(self, batch: SampleBatch) -> StepResults: ...
+
+    def save_state(self) -> dict[str, np.ndarray]: ...
+
+    def restore_state(self, state: dict[str, np.ndarray]) -> None: ...
+
+
+def pack_checkpoint(monitor_state: dict[str, np.ndarray], sequence_state: TrackerState) -> bytes:
+    """Serialise the monitor's arrays and the sequence tracker's state (npz with a JSON entry)."""
+    meta = json.dumps({"format": CHECKPOINT_FORMAT, "sequence": sequence_state.to_dict()})
+    buffer = io.BytesIO()
+    np.savez(buffer, __meta__=np.frombuffer(meta.encode(), dtype=np.uint8), **monitor_state)
+    return buffer.getvalue()
+
+
+def unpack_checkpoint(data: bytes) -> tuple[dict[str, np.ndarray], TrackerState]:
+    """Inverse of :func:`pack_checkpoint`; an unknown format is an error, never a silent reset."""
+    with np.load(io.BytesIO(data), allow_pickle=False) as npz:
+        arrays = {k: npz[k] for k in npz.files}
+    meta = json.loads(arrays.pop("__meta__").tobytes().decode())
+    if meta.get("format") != CHECKPOINT_FORMAT:
+        raise ShadowError(f"checkpoint format {meta.get('format')!r} is not supported (this service: 1)")
+    return arrays, TrackerState.from_dict(meta["sequence"])
+
+
+@dataclass
+class RobotStatus:
+    """Counters of one robot, for the status endpoint and the metrics."""
+
+    robot_id: str
+    messages_processed: int = 0
+    samples_processed: int = 0
+    dead_letters: int = 0
+    duplicates_dropped: int = 0
+    gaps: int = 0
+    store_failures: int = 0
+    last_sample_time_s: float | None = None
+    last_step_at_s: float | None = None
+    unwritten_steps: int = 0
+
+
+@dataclass
+class ServiceStatus:
+    robots: dict[str, RobotStatus] = field(default_factory=dict)
+    started_at_s: float = field(default_factory=time.time)
+
+
+class RobotPipeline:
+    """One robot: inbox -> decode -> sequence -> monitor -> store -> acknowledge."""
+
+    def __init__(
+        self,
+        address: RobotAddress,
+        monitor: Monitor,
+        store: SqlStore,
+        *,
+        inbox: queue.Queue[ReceivedMessage],
+        acknowledge: Callable[[ReceivedMessage], None],
+        layout: TopicLayout,
+        n_actuators: int,
+        limits: PlausibilityLimits | None = None,
+        keep_raw: bool = True,
+        max_messages_per_step: int = 50,
+        reorder_window: int = 4,
+    ) -> None:
+        self.address = address
+        self.robot_id = str(address)
+        self.monitor = monitor
+        self.store = store
+        self.inbox = inbox
+        self.acknowledge = acknowledge
+        self.layout = layout
+        self.n_actuators = n_actuators
+        self.limits = limits
+        self.keep_raw = keep_raw
+        self.max_messages_per_step = max_messages_per_step
+        self.status = RobotStatus(self.robot_id)
+        self.sequence = SequenceTracker(reorder_window=reorder_window)
+        self._unwritten: StepResults | None = None
+        self._unacknowledged: list[ReceivedMessage] = []
+        self._restore()
+
+    def _restore(self) -> None:
+        cp = self.store.checkpoint(self.robot_id)
+        if cp is None:
+            return
+        monitor_state, sequence_state = unpack_checkpoint(cp.state)
+        self.monitor.restore_state(monitor_state)
+        self.sequence = SequenceTracker(reorder_window=self.sequence.reorder_window, state=sequence_state)
+        self.status.last_sample_time_s = cp.last_time_s
+        log.info("robot %s: resumed from checkpoint at seq %d", self.robot_id, cp.last_seq)
+
+    def step(self) -> int:
+        """Handle what is in the inbox (up to a cap); returns how many messages were taken."""
+        taken: list[ReceivedMessage] = []
+        while len(taken) < self.max_messages_per_step:
+            try:
+                taken.append(self.inbox.get_nowait())
+            except queue.Empty:
+                break
+        if not taken and self._unwritten is None:
+            return 0
+        results = StepResults(self.robot_id)
+        released: list[SampleBatch] = []
+        for message in taken:
+            results.extend(self._handle(message, released))
+        if released:
+            results.extend(self._process(released))
+        if taken:
+            results.checkpoint = Checkpoint(
+                self.robot_id,
+                int(self.sequence.state.next_seq or 1) - 1,
+                float(self.sequence.state.last_t_s or 0.0),
+                pack_checkpoint(self.monitor.save_state(), self.sequence.state),
+            )
+        if self._unwritten is not None:
+            self._unwritten.extend(results)
+            results = self._unwritten
+        self._unacknowledged.extend(taken)
+        try:
+            self.store.write_step(results)
+        except StoreUnavailableError as exc:
+            if self._unwritten is None:
+                log.warning("robot %s: store unavailable, holding results and acknowledgements: %s", self.robot_id, exc)
+            self.status.store_failures += 1
+            self._unwritten = results
+            self.status.unwritten_steps += 1
+            return len(taken)
+        self._unwritten = None
+        self.status.unwritten_steps = 0
+        for message in self._unacknowledged:  # arrival order
+            self.acknowledge(message)
+        self._unacknowledged.clear()
+        self.status.last_step_at_s = time.time()
+        return len(taken)
+
+    def _handle(self, message: ReceivedMessage, released: list[SampleBatch]) -> StepResults:
+        out = StepResults(self.robot_id)
+        try:
+            address, kind = self.layout.parse(message.topic)
+            if address != self.address or kind is not TopicKind.SAMPLES:
+                raise RejectedMessageError("bad_topic", f"topic {message.topic!r} is not the topic of {self.address}")
+            batch = decode_message(message.payload, n_actuators=self.n_actuators, limits=self.limits)
+            check_sender(self.address, batch.robot_id)
+        except RejectedMessageError as exc:
+            self.status.dead_letters += 1
+            out.dead_letters.append(
+                {
+                    "received_at_s": message.received_at_s,
+                    "topic": message.topic,
+                    "robot_id": self.robot_id,
+                    "reason_code": exc.reason_code,
+                    "reason": exc.reason,
+                    "payload": message.payload,
+                }
+            )
+            return out
+        self.status.messages_processed += 1
+        for event in self.sequence.push(batch):
+            if isinstance(event, Released):
+                released.append(event.batch)
+            elif isinstance(event, Dropped):
+                self.status.duplicates_dropped += 1
+            elif isinstance(event, Gap):
+                self.status.gaps += 1
+                out.unmonitored.append(
+                    {
+                        "start_s": event.after_t_s,
+                        "end_s": event.before_t_s,
+                        "cause": "sequence_gap",
+                        "detail": f"messages {event.first_seq}..{event.last_seq} never arrived",
+                    }
+                )
+            elif isinstance(event, Restart):
+                out.unmonitored.append(
+                    {
+                        "start_s": event.after_t_s,
+                        "end_s": event.before_t_s,
+                        "cause": "sender_restart",
+                        "detail": f"sequence restarted from {event.previous_seq} to {event.new_seq}",
+                    }
+                )
+        return out
+
+    def _process(self, batches: list[SampleBatch]) -> StepResults:
+        """Run the monitor on the released batches, as one block when it can."""
+        try:
+            out = self.monitor.process_many(batches)
+        except ShadowError:
+            out = StepResults(self.robot_id)  # the monitor left its state as it was: retry one by one
+            for batch in batches:
+                out.extend(self._process_one(batch))
+        else:
+            for batch in batches:
+                out.extend(self._kept(batch))
+        return out
+
+    def _process_one(self, batch: SampleBatch) -> StepResults:
+        try:
+            out = self.monitor.process(batch)
+        except ShadowError as exc:
+            # the model refused the batch (e.g. an unreachable pose): keep it as evidence, say why
+            self.status.dead_letters += 1
+            out = StepResults(self.robot_id)
+            out.dead_letters.append(
+                {
+                    "received_at_s": time.time(),
+                    "topic": self.layout.samples_topic(self.address),
+                    "robot_id": self.robot_id,
+                    "reason_code": "model_refused",
+                    "reason": str(exc),
+                    "payload": encode_binary(batch),
+                }
+            )
+            return out
+        out.extend(self._kept(batch))
+        return out
+
+    def _kept(self, batch: SampleBatch) -> StepResults:
+        """Raw retention and counters of a batch the monitor took."""
+        out = StepResults(self.robot_id)
+        if self.keep_raw:
+            out.raw_batches.append(
+                {
+                    "seq": batch.seq,
+                    "first_time_s": float(batch.t[0]),
+                    "last_time_s": float(batch.t[-1]),
+                    "n_samples": batch.n_samples,
+                    "payload": encode_binary(batch),
+                }
+            )
+        self.status.samples_processed += batch.n_samples
+        self.status.last_sample_time_s = float(batch.t[-1])
+        return out
+
+
+class Service:
+    """All robots of one configuration, one pipeline thread, one store."""
+
+    def __init__(
+        self,
+        store: SqlStore,
+        pipelines: Sequence[RobotPipeline],
+        subscriptions: Sequence[RobotSubscription] = (),
+        *,
+        raw_retention_s: float = 3600.0,
+        idle_sleep_s: float = 0.005,
+    ) -> None:
+        self.store = store
+        self.pipelines = list(pipelines)
+        self.subscriptions = list(subscriptions)
+        self.raw_retention_s = raw_retention_s
+        self.idle_sleep_s = idle_sleep_s
+        self.status = ServiceStatus({p.robot_id: p.status for p in self.pipelines})
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._last_prune_s = 0.0
+
+    def start(self) -> None:
+        for sub in self.subscriptions:
+            sub.start(wait_s=None)  # paho keeps trying with back-off; a down broker is not fatal
+        self._thread = threading.Thread(target=self._run, name="shadow-pipeline", daemon=True)
+        self._thread.start()
+
+    def stop(self, *, timeout_s: float = 10.0) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout_s)
+        for sub in self.subscriptions:
+            sub.stop()
+
+    def run_once(self) -> int:
+        """One pass over every robot; returns the number of messages taken."""
+        taken = 0
+        for pipeline in self.pipelines:
+            taken += pipeline.step()
+        now = time.time()
+        if self.raw_retention_s > 0 and now - self._last_prune_s > 60.0:
+            self._last_prune_s = now
+            for pipeline in self.pipelines:
+                try:
+                    self.store.prune_raw_batches(pipeline.robot_id, older_than_s=now - self.raw_retention_s)
+                except StoreUnavailableError:
+                    pass  # retried at the next prune
+        return taken
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            try:
+                if self.run_once() == 0:
+                    self._stop.wait(self.idle_sleep_s)
+            except Exception:  # keep following the other robots; the error is in the log with its trace
+                log.exception("pipeline pass failed")
+                self._stop.wait(1.0)
+
+
+def subscription_for(address: RobotAddress, layout: TopicLayout, settings: MqttSettings) -> RobotSubscription:
+    """The persistent session of one robot on its samples topic."""
+    return RobotSubscription(str(address), layout.samples_topic(address), settings)
+
+
+def describe_counts(status: ServiceStatus) -> dict[str, Any]:
+    """Plain numbers for logs and the status endpoint."""
+    return {rid: vars(s).copy() for rid, s in status.robots.items()}
