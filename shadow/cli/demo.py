@@ -25,7 +25,7 @@ CAUTION = (
 def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = commands.add_parser(
         "demo",
-        help="run the demo: local broker, simulated robots and shadow following them",
+        help="run the demo: broker, simulated robots, shadow, dashboard",
         description=__doc__,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )

@@ -55,7 +55,7 @@ class MotionFileError(ShadowError, ValueError):
 def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = commands.add_parser(
         "robot",
-        help="check a robot description, or compute model efforts along a recorded motion",
+        help="check a description, or compute efforts along a motion",
         description=__doc__,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
