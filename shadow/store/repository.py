@@ -36,6 +36,9 @@ class Checkpoint:
     state: bytes
 
 
+ROW_LISTS = ("estimates", "residual_aggregates", "events", "health", "unmonitored", "raw_batches", "dead_letters")
+
+
 @dataclass(slots=True)
 class StepResults:
     """Everything one processing step produced for one robot, written atomically."""
@@ -47,20 +50,20 @@ class StepResults:
     health: list[dict[str, Any]] = field(default_factory=list)
     unmonitored: list[dict[str, Any]] = field(default_factory=list)
     raw_batches: list[dict[str, Any]] = field(default_factory=list)
+    dead_letters: list[dict[str, Any]] = field(default_factory=list)  # see SqlStore.write_dead_letters
     checkpoint: Checkpoint | None = None
 
+    def extend(self, other: StepResults) -> None:
+        """Append another step's rows (same robot); the newer checkpoint wins."""
+        if other.robot_id != self.robot_id:
+            raise ConfigurationError(f"cannot merge results of {other.robot_id} into {self.robot_id}")
+        for name in ROW_LISTS:
+            getattr(self, name).extend(getattr(other, name))
+        if other.checkpoint is not None:
+            self.checkpoint = other.checkpoint
+
     def row_count(self) -> int:
-        return sum(
-            len(rows)
-            for rows in (
-                self.estimates,
-                self.residual_aggregates,
-                self.events,
-                self.health,
-                self.unmonitored,
-                self.raw_batches,
-            )
-        )
+        return sum(len(getattr(self, name)) for name in ROW_LISTS)
 
 
 class SqlStore:
@@ -124,23 +127,14 @@ class SqlStore:
             ):
                 if rows:
                     conn.execute(table.insert(), _uniform_rows(table, rid, rows))
+            if results.dead_letters:
+                conn.execute(schema.dead_letters.insert(), [_dead_letter_row(d) for d in results.dead_letters])
             if results.checkpoint is not None:
                 self._upsert_checkpoint(conn, results.checkpoint)
 
     def write_dead_letters(self, letters: Iterable[dict[str, Any]]) -> int:
         """Record rejected messages: received_at_s, topic, robot_id, reason_code, reason, payload (bytes)."""
-        rows = [
-            {
-                "received_at_s": d["received_at_s"],
-                "topic": d["topic"][:400],
-                "robot_id": d.get("robot_id"),
-                "reason_code": d["reason_code"][:32],
-                "reason": d["reason"],
-                "payload_size": len(d["payload"]),
-                "payload_head": bytes(d["payload"][:DEAD_LETTER_HEAD_BYTES]),
-            }
-            for d in letters
-        ]
+        rows = [_dead_letter_row(d) for d in letters]
         if rows:
             with self._begin() as conn:
                 conn.execute(schema.dead_letters.insert(), rows)
@@ -302,6 +296,18 @@ class _Transaction:
             ) from commit_error
         if isinstance(exc, lost):
             raise StoreUnavailableError(f"database write failed, nothing of it kept: {exc.orig}") from exc
+
+
+def _dead_letter_row(d: dict[str, Any]) -> dict[str, Any]:
+    return {
+        "received_at_s": d["received_at_s"],
+        "topic": d["topic"][:400],
+        "robot_id": d.get("robot_id"),
+        "reason_code": d["reason_code"][:32],
+        "reason": d["reason"],
+        "payload_size": len(d["payload"]),
+        "payload_head": bytes(d["payload"][:DEAD_LETTER_HEAD_BYTES]),
+    }
 
 
 def _uniform_rows(table: sa.Table, robot_id: str, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
