@@ -254,7 +254,7 @@ class RobotMonitor:
             results.residual_aggregates.append(
                 {
                     "time_s": float(out.t[0]),
-                    "actuator": i,
+                    "actuator": i + 1,  # 1-based, as in the parameter names
                     "window_s": float(out.t[-1] - out.t[0]),
                     "n_samples": out.n_samples,
                     "rms": float(rms[i]),
@@ -354,7 +354,7 @@ class RobotMonitor:
         robot = robot_health(actuators, self._recent_collisions, deviation, 0.0, limits)
         results.health.append(_health_row(t_end, "robot", robot))
         for i, h in enumerate(actuators):
-            results.health.append(_health_row(t_end, f"actuator:{i}", h))
+            results.health.append(_health_row(t_end, f"actuator:{i + 1}", h))
 
     # ---------------------------------------------------------------- state
     def save_state(self) -> dict[str, np.ndarray]:

@@ -53,7 +53,7 @@ def find_executable(name: str, extra_dirs: list[Path] | None = None) -> str:
         if found is None and (d / name).exists():
             found = str(d / name)
     if found is None:
-        package = "mosquitto" if name == "mosquitto" else "postgresql"
+        package = "mosquitto" if name.startswith("mosquitto") else "postgresql"
         pytest.fail(f"{name} is not installed; run: apt-get install -y {package}")
     return found
 

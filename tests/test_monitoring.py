@@ -66,8 +66,8 @@ def test_no_event_without_an_impact_and_estimates_converge(rng: np.random.Genera
         assert last[f"coulomb_{i}"]["value"] == pytest.approx(1.5, rel=0.05)
         assert last[f"coulomb_{i}"]["identifiable"]
     states = {h["scope"]: h["state"] for h in res.health if h["time_s"] == res.health[-1]["time_s"]}
-    assert states == {"robot": "steady", "actuator:0": "steady", "actuator:1": "steady", "actuator:2": "steady"}
-    aggregates = [a for a in res.residual_aggregates if a["actuator"] == 0]
+    assert states == {"robot": "steady", "actuator:1": "steady", "actuator:2": "steady", "actuator:3": "steady"}
+    aggregates = [a for a in res.residual_aggregates if a["actuator"] == 1]
     assert len(aggregates) >= 14 and all(a["rms"] > 0 for a in aggregates)
 
 

@@ -29,6 +29,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from shadow import __version__
 from shadow.api import schemas as out
 from shadow.api.metrics import metrics_renderer
+from shadow.api.pages import pages_router
 from shadow.api.security import GuardSettings, ReadOnlyGuard
 from shadow.errors import RejectedMessageError, ShadowError
 from shadow.ingest.topics import RobotAddress
@@ -345,6 +346,7 @@ def create_app(
     app.state.store = store
     app.state.status_provider = status_provider
     app.include_router(router)
+    app.include_router(pages_router)
 
     @app.exception_handler(ApiError)
     async def _api_error(request: Request, exc: ApiError) -> JSONResponse:

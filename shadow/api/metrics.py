@@ -71,7 +71,7 @@ class StoreCollector(Collector):
                 GaugeMetricFamily(metric, "RMS of the effort residual, last window", labels=["robot_id", "actuator"]),
             )
             for actuator, row in sorted(newest.items()):
-                fam.add_metric([rid, str(actuator + 1)], row["rms"])
+                fam.add_metric([rid, str(actuator)], row["rms"])
         yield health
         yield mass
         yield from friction.values()

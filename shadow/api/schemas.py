@@ -28,7 +28,7 @@ class ErrorOut(BaseModel):
 
 
 class HealthOut(BaseModel):
-    scope: str = Field(description="'robot' or 'actuator:<index>' (0-based)")
+    scope: str = Field(description="'robot' or 'actuator:<number>' (1-based, as in parameter names)")
     state: str = Field(description="health state name")
     time: str | None = Field(description="when it was assessed, ISO 8601 UTC")
     reasons: list[str] = Field(description="why, in words")
@@ -83,7 +83,7 @@ class EstimateSeriesOut(BaseModel):
 
 class ResidualPointOut(BaseModel):
     time: str
-    actuator: int
+    actuator: int = Field(description="actuator number, 1-based")
     window_s: float
     n_samples: int
     rms: float = Field(description="residual RMS over the window [N m or N]")

@@ -53,7 +53,7 @@ residual_aggregates = sa.Table(
     metadata,
     sa.Column("robot_id", sa.String(200), sa.ForeignKey("robots.robot_id"), primary_key=True),
     sa.Column("time_s", sa.Float, primary_key=True),  # start of the aggregation window
-    sa.Column("actuator", sa.Integer, primary_key=True),
+    sa.Column("actuator", sa.Integer, primary_key=True),  # 1-based
     sa.Column("window_s", sa.Float, nullable=False),
     sa.Column("n_samples", sa.Integer, nullable=False),
     sa.Column("rms", sa.Float, nullable=False),  # N m or N
@@ -84,7 +84,7 @@ health_snapshots = sa.Table(
     metadata,
     sa.Column("robot_id", sa.String(200), sa.ForeignKey("robots.robot_id"), primary_key=True),
     sa.Column("time_s", sa.Float, primary_key=True),
-    sa.Column("scope", sa.String(32), primary_key=True),  # "robot" or "actuator:<i>"
+    sa.Column("scope", sa.String(32), primary_key=True),  # "robot" or "actuator:<1-based number>"
     sa.Column("state", sa.String(16), nullable=False),
     sa.Column("reasons", sa.JSON, nullable=False),  # list of sentences
     sa.Column("figures", sa.JSON, nullable=False),

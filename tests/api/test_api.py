@@ -52,13 +52,13 @@ def store(tmp_path: Path) -> SqlStore:
         ]
         r.residual_aggregates += [
             {"time_s": t, "actuator": a, "window_s": 1.0, "n_samples": 1000, "rms": 0.1, "peak": 0.3, "nis": 3.0}
-            for a in range(3)
+            for a in (1, 2, 3)
         ]
     r.health = [
         {"time_s": T0 + 19, "scope": "robot", "state": "watch", "reasons": ["actuator 2 friction up 18 %"],
          "figures": {"wear_ratio": 1.18}},
-        {"time_s": T0 + 19, "scope": "actuator:1", "state": "watch", "reasons": ["friction up"], "figures": {}},
-        {"time_s": T0 + 19, "scope": "actuator:0", "state": "steady", "reasons": [], "figures": {}},
+        {"time_s": T0 + 19, "scope": "actuator:2", "state": "watch", "reasons": ["friction up"], "figures": {}},
+        {"time_s": T0 + 19, "scope": "actuator:1", "state": "steady", "reasons": [], "figures": {}},
     ]  # fmt: skip
     r.events = [
         {"kind": "collision", "start_s": T0 + 10.001, "end_s": T0 + 10.003, "severity": "high", "summary": "impact",
@@ -98,7 +98,7 @@ def test_robots_list_carries_health_and_the_advisory_notice(store: SqlStore) -> 
 def test_robot_health_per_actuator(store: SqlStore) -> None:
     body = client(store).get("/api/v1/robots/northfield/line3/picker-1/health").json()
     assert body["robot"]["state"] == "watch"
-    assert [a["scope"] for a in body["actuators"]] == ["actuator:0", "actuator:1"]
+    assert [a["scope"] for a in body["actuators"]] == ["actuator:1", "actuator:2"]
 
 
 def test_estimates_with_range_downsampling_and_pages(store: SqlStore) -> None:
@@ -123,7 +123,7 @@ def test_residuals_and_unmonitored(store: SqlStore) -> None:
     c = client(store)
     base = "/api/v1/robots/northfield/line3/picker-1"
     res = c.get(f"{base}/residuals", params={"start": iso(T0), "end": iso(T0 + 2)}).json()
-    assert [(p["actuator"], p["rms"]) for p in res["points"]] == [(a, 0.1) for a in range(3)] * 2
+    assert [(p["actuator"], p["rms"]) for p in res["points"]] == [(a, 0.1) for a in (1, 2, 3)] * 2
     gaps = c.get(f"{base}/unmonitored", params={"start": iso(T0), "end": iso(T0 + 20)}).json()
     assert gaps["intervals"][0]["cause"] == "sequence_gap"
 
