@@ -1,0 +1,382 @@
+"""The simulated plant: a rigid mechanism (any :class:`shadow.robots.mechanism.Mechanism`) plus drive effects.
+
+Everything is vectorised over a batch axis B of independent systems (robots or time windows side by side):
+the rigid model is evaluated once per derivative call for the whole batch, each system with its own payload.
+
+Symbols
+-------
+n         : number of actuators; p payload parameters; k platform DOF
+q, qd     : (B, n) load-side actuator coordinates and rates, the rigid mechanism's [rad | m]
+q_m, qd_m : (B, n) motor-side coordinates at the joint (only with a compliant coupling)
+theta_p   : (B, p) payload parameters of each system
+M, h      : (B, n, n), (B, n) mass matrix (rotor inertia included) and bias efforts of the rigid model
+J_r       : (n,) reflected rotor inertia [kg m^2 | kg]
+tau_a     : (B, n) actual drive effort (current-loop output) [N m | N]
+u         : (B, n) commanded effort, held over a sample
+w         : (B, k) external wrench on the platform; J (B, k, n) platform Jacobian
+
+Equations
+---------
+Rigid plant (no coupling), the forward dynamics of the rigid model with drive effects:
+    ``M(q) qdd = tau_a - tau_f(qd, T) + J^T w - h(q, qd)``
+Compliant plant, two masses per actuator joined by the coupling effort ``tau_c = k dz(q_m - q) + c (qd_m - qd)``:
+    ``J_r qdd_m = tau_a - tau_f(qd_m, T) - tau_c``  and  ``(M(q) - diag J_r) qdd = tau_c + J^T w - h(q, qd)``
+(the model's M includes the rotors; the load side carries the rest). The external wrench maps to efforts by the
+principle of virtual work, ``tau_ext = J^T w``.
+Current loop, first-order lag of time constant T_c with u held from t_0:
+    ``tau_a(t) = u + (tau_a(t_0) - u) exp(-(t - t_0) / T_c)``  (exact, evaluated at each integrator stage).
+
+M and h for a per-system payload (the model's methods take one theta_p for all rows) come from the linearity
+in theta_p: ``h = tau_known + Y_p theta_p`` of the rigid regressor at qdd = 0, and M by the cheaper exact route
+of :func:`mass_terms`.
+
+State layout: ``position = [q]`` (B, n) or ``[q, q_m]`` (B, 2n); ``velocity`` likewise.
+"""
+
+from __future__ import annotations
+
+import enum
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
+
+import numpy as np
+from numpy.typing import NDArray
+
+from shadow.errors import ConfigurationError, ShapeError, expect_shape
+from shadow.robots.mechanism import Mechanism
+from simulators.effects import CompliantCoupling, DriveThermal, StribeckFriction
+from simulators.integrators import Method, heun_step, rk4_step, second_order_derivative, symplectic_euler_step
+
+Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True, slots=True)
+class HalfSinePulse:
+    """Impact force pulses on the platform, one per system (peak 0 for none).
+
+    ``w(t) = peak sin(pi (t - t_0) / d) direction`` for ``t_0 <= t <= t_0 + d``, else 0.
+    ``direction`` (B, k) holds a unit wrench direction in the platform-Jacobian convention (for a hexapod,
+    a pure force is ``[f; 0]`` at the platform origin).
+    """
+
+    start_s: Array  # (B,) t_0
+    duration_s: Array  # (B,) d > 0
+    peak: Array  # (B,) [N] (or the wrench's unit)
+    direction: Array  # (B, k)
+
+    def active(self, t: float) -> NDArray[np.bool_]:
+        """(B,) True while the pulse pushes, ``t_0 < t < t_0 + d`` (peak non-zero)."""
+        phase = (t - self.start_s) / self.duration_s
+        return (phase > 0.0) & (phase < 1.0) & (self.peak != 0.0)
+
+    def wrench(self, t: float) -> Array | None:
+        """(B, k) wrench at time t, or None when no pulse is active in any system (saves the Jacobian call)."""
+        phase = (t - self.start_s) / self.duration_s
+        active = self.active(t)
+        if not active.any():
+            return None
+        amplitude = np.where(active, self.peak * np.sin(np.pi * np.clip(phase, 0.0, 1.0)), 0.0)
+        return amplitude[:, None] * self.direction
+
+
+@dataclass(frozen=True, slots=True)
+class PlantConfig:
+    """Drive effects around the rigid model. ``None`` switches an effect off."""
+
+    rotor_inertia: Array  # J_r (n,) reflected, as included in the model's M
+    current_time_constant_s: Array  # T_c (n,); 0 gives an ideal current loop
+    friction: StribeckFriction | None = None
+    coupling: CompliantCoupling | None = None
+    thermal: DriveThermal | None = None
+    effort_per_ampere: Array | None = None  # (n,) joint effort per torque-producing current, for copper losses
+
+    def __post_init__(self) -> None:
+        if np.any(np.asarray(self.current_time_constant_s) < 0.0):
+            raise ConfigurationError("current_time_constant_s: must be non-negative")
+        if self.coupling is not None and np.any(np.asarray(self.rotor_inertia) <= 0.0):
+            raise ConfigurationError("rotor_inertia: must be positive when a compliant coupling is used")
+        if self.thermal is not None and self.effort_per_ampere is None:
+            raise ConfigurationError("effort_per_ampere: needed by the thermal model's copper losses")
+
+
+@dataclass(frozen=True, slots=True)
+class PlantState:
+    """State of B systems at time ``t_s``."""
+
+    t_s: float
+    position: Array  # (B, n) or (B, 2n): [q] or [q, q_m]
+    velocity: Array  # same shape
+    effort: Array  # tau_a (B, n)
+    temperature_c: Array  # T (B, n)
+    mass_history: tuple[Array, float, Array] | None = None  # (M, t, theta_p) at the last step start (EVERY_STEP)
+
+
+def bias_terms(mechanism: Mechanism, q: Array, qd: Array, theta_p: Array) -> Array:
+    """h (B, n) for a payload per system: ``tau_known + Y_p theta_p`` of the regressor at qdd = 0 (B rows)."""
+    tau_known, y_p = mechanism.rigid_regressor(q, qd, np.zeros_like(q))
+    return tau_known + np.einsum("bap,bp->ba", y_p, theta_p)
+
+
+def mass_terms(mechanism: Mechanism, q: Array, theta_p: Array, *, route: str = "auto") -> Array:
+    """M (B, n, n) for a payload per system, by the cheaper of two exact routes.
+
+    M is affine in theta_p: ``M(q, theta) = M(q, 0) + sum_j theta_j (M(q, e_j) - M(q, 0))`` (p + 1 calls of
+    B rows, cheap for the delta's p = 1); or from the regressor, column i of M is
+    ``tau(q, 0, e_i) - tau(q, 0, 0)`` (one call of B (n + 1) rows, cheaper for the hexapod's p = 10).
+    ``route``: "auto" (the cheaper), "affine" or "regressor".
+    """
+    b, n = q.shape
+    p = theta_p.shape[1]
+    if route not in ("auto", "affine", "regressor"):
+        raise ConfigurationError(f"route: expected 'auto', 'affine' or 'regressor', got {route!r}")
+    if route == "affine" or (route == "auto" and p + 1 <= n + 1):
+        m0 = mechanism.mass_matrix(q, np.zeros(p))
+        m = m0.copy()
+        for j in range(p):  # loop over the payload parameters, not over samples
+            m += theta_p[:, j, None, None] * (mechanism.mass_matrix(q, np.eye(p)[j]) - m0)
+        return m
+    q_rows = np.broadcast_to(q[:, None, :], (b, n + 1, n)).reshape(-1, n)
+    qdd_rows = np.broadcast_to(np.vstack([np.zeros(n), np.eye(n)])[None], (b, n + 1, n)).reshape(-1, n)
+    tau_known, y_p = mechanism.rigid_regressor(q_rows, np.zeros_like(q_rows), qdd_rows)
+    tau = tau_known.reshape(b, n + 1, n) + np.einsum("bral,bl->bra", y_p.reshape(b, n + 1, n, p), theta_p)
+    return np.swapaxes(tau[:, 1:, :] - tau[:, :1, :], 1, 2)  # column i: tau(q, 0, e_i) - tau(q, 0, 0)
+
+
+def rigid_terms(mechanism: Mechanism, q: Array, qd: Array, theta_p: Array) -> tuple[Array, Array]:
+    """(M (B, n, n), h (B, n)) for a payload per system (theta_p (B, p))."""
+    return mass_terms(mechanism, q, theta_p), bias_terms(mechanism, q, qd, theta_p)
+
+
+class MassUpdate(enum.Enum):
+    """How often the plant evaluates M(q).
+
+    ``EVERY_STAGE`` keeps the integrator's order. ``EVERY_STEP`` evaluates M once per internal step, at its
+    start, and extrapolates it linearly in time from the previous step start through the stages,
+    ``M(t) = M_k + (M_k - M_{k-1}) (t - t_k) / h`` (h and all effects are still evaluated at every stage):
+    about half the model cost for an O(h^2) error in the acceleration, so the method converges at order 2
+    (order 1 on the very first step, which holds M). The benchmark measures its error against ``EVERY_STAGE``.
+    """
+
+    EVERY_STAGE = "every_stage"
+    EVERY_STEP = "every_step"
+
+
+class Plant:
+    """Rigid mechanism plus drive effects, integrated with a fixed internal step.
+
+    Parameters
+    ----------
+    mechanism : the rigid model
+    config : :class:`PlantConfig`
+    internal_step_s : integrator step h [s]
+    method : :class:`simulators.integrators.Method`
+    mass_update : :class:`MassUpdate`
+    """
+
+    def __init__(
+        self,
+        mechanism: Mechanism,
+        config: PlantConfig,
+        *,
+        internal_step_s: float,
+        method: Method = Method.RK4,
+        mass_update: MassUpdate = MassUpdate.EVERY_STAGE,
+    ) -> None:
+        if internal_step_s <= 0.0:
+            raise ConfigurationError(f"internal_step_s: must be positive, got {internal_step_s}")
+        n = mechanism.n_actuators
+        expect_shape("rotor_inertia", np.asarray(config.rotor_inertia, dtype=float), (n,))
+        self.mechanism = mechanism
+        self.config = config
+        self.internal_step_s = float(internal_step_s)
+        self.method = method
+        self.mass_update = mass_update
+        self.n = n
+        self.compliant = config.coupling is not None
+        self._tc = np.asarray(config.current_time_constant_s, dtype=float)
+        self._jr = np.asarray(config.rotor_inertia, dtype=float)
+        self._coupling = config.coupling
+
+    # ------------------------------------------------------------------------------------------ set-up
+    def initial_state(
+        self, q0: Array, theta_p: Array, *, temperature_c: Array, t0_s: float = 0.0, qd0: Array | None = None
+    ) -> PlantState:
+        """State at rest (or at qd0) with the drives holding the static load: tau_a = h(q0, qd0).
+
+        With a coupling the motor side is pre-deflected so that the spring carries the load: q_m = q + tau / k
+        (plus half the backlash gap in the direction of the load).
+        """
+        q0 = np.asarray(q0, dtype=float)
+        b = q0.shape[0]
+        expect_shape("q0", q0, (None, self.n))
+        expect_shape("theta_p", theta_p, (b, self.mechanism.n_payload_parameters))
+        qd0 = np.zeros_like(q0) if qd0 is None else np.asarray(qd0, dtype=float)
+        h = bias_terms(self.mechanism, q0, qd0, theta_p)
+        effort = h.copy()
+        temperature = np.broadcast_to(np.asarray(temperature_c, dtype=float), (b, self.n)).copy()
+        if self.config.friction is not None:
+            effort += self.config.friction.effort(qd0, temperature)
+        if self.compliant:
+            cp = self._coupling
+            if cp is None:  # not reached: self.compliant is False then
+                raise ConfigurationError("coupling: missing")
+            gap = 0.5 * np.asarray(cp.backlash, dtype=float)
+            qm0 = q0 + h / cp.stiffness + np.sign(h) * gap
+            position = np.concatenate([q0, qm0], axis=1)
+            velocity = np.concatenate([qd0, qd0], axis=1)
+        else:
+            position, velocity = q0.copy(), qd0.copy()
+        return PlantState(t_s=t0_s, position=position, velocity=velocity, effort=effort, temperature_c=temperature)
+
+    # ------------------------------------------------------------------------------------------ physics
+    def load_side(self, state: PlantState) -> tuple[Array, Array]:
+        """(q, qd) of the rigid mechanism, (B, n) each."""
+        return state.position[:, : self.n], state.velocity[:, : self.n]
+
+    def motor_side(self, state: PlantState) -> tuple[Array, Array]:
+        """(q_m, qd_m), what the motor encoder sees, (B, n) each; equal to the load side without a coupling."""
+        if not self.compliant:
+            return self.load_side(state)
+        return state.position[:, self.n :], state.velocity[:, self.n :]
+
+    def friction_effort(self, v_motor: Array, temperature_c: Array) -> Array:
+        """tau_f (B, n), zero when friction is off."""
+        if self.config.friction is None:
+            return np.zeros_like(v_motor)
+        return self.config.friction.effort(v_motor, temperature_c)
+
+    def external_effort(self, q: Array, wrench: Array | None) -> Array:
+        """J^T w (B, n) (principle of virtual work), zero without a wrench."""
+        if wrench is None:
+            return np.zeros_like(q)
+        jac = self.mechanism.platform_jacobian(q)
+        return np.einsum("bkn,bk->bn", jac, wrench)
+
+    def acceleration(
+        self,
+        position: Array,
+        velocity: Array,
+        effort: Array,
+        theta_p: Array,
+        temperature_c: Array,
+        wrench: Array | None,
+        *,
+        mass_matrix: Array | None = None,
+    ) -> Array:
+        """d(velocity)/dt (B, n) or (B, 2n) for the given drive effort tau_a (B, n) and wrench (B, k) or None.
+
+        ``mass_matrix`` (B, n, n), if given, is used instead of M(q) (held over a step, see :class:`MassUpdate`).
+        """
+        n = self.n
+        q, qd = position[:, :n], velocity[:, :n]
+        m = mass_terms(self.mechanism, q, theta_p) if mass_matrix is None else mass_matrix
+        h = bias_terms(self.mechanism, q, qd, theta_p)
+        tau_ext = self.external_effort(q, wrench)
+        if not self.compliant:
+            tau_f = self.friction_effort(qd, temperature_c)
+            rhs = effort - tau_f + tau_ext - h  # M qdd = tau_a - tau_f + J^T w - h
+            return np.linalg.solve(m, rhs[..., None])[..., 0]
+        cp = self._coupling
+        if cp is None:  # not reached: self.compliant is False then
+            raise ConfigurationError("coupling: missing")
+        qm, qdm = position[:, n:], velocity[:, n:]
+        tau_c = cp.effort(qm - q, qdm - qd)  # coupling effort, motor side on load side
+        m_load = m - np.diag(self._jr)[None]  # load side: the model's M without the rotors
+        qdd = np.linalg.solve(m_load, (tau_c + tau_ext - h)[..., None])[..., 0]
+        qddm = (
+            effort - self.friction_effort(qdm, temperature_c) - tau_c
+        ) / self._jr  # J_r qdd_m = tau_a - tau_f - tau_c
+        return np.concatenate([qdd, qddm], axis=1)
+
+    def effort_at(self, effort0: Array, command: Array, elapsed_s: float) -> Array:
+        """tau_a after ``elapsed_s`` with u held: u + (tau_a0 - u) exp(-t / T_c) (exact first-order lag)."""
+        with np.errstate(divide="ignore", over="ignore"):
+            decay = np.where(self._tc > 0.0, np.exp(-elapsed_s / np.where(self._tc > 0.0, self._tc, 1.0)), 0.0)
+        return command + (effort0 - command) * decay
+
+    # ----------------------------------------------------------------------------------------- stepping
+    def advance(
+        self,
+        state: PlantState,
+        command: Array,
+        theta_p: Array,
+        *,
+        n_steps: int,
+        pulses: Sequence[HalfSinePulse] = (),
+    ) -> PlantState:
+        """Advance by ``n_steps`` internal steps with the command u (B, n) held (one control period).
+
+        Temperatures are held over the call (they change over minutes); the caller steps the thermal model.
+        """
+        expect_shape("command", command, state.effort.shape)
+        if theta_p.shape != (state.effort.shape[0], self.mechanism.n_payload_parameters):
+            raise ShapeError(f"theta_p: expected shape {(state.effort.shape[0], self.mechanism.n_payload_parameters)}")
+        t0, effort0, temperature = state.t_s, state.effort, state.temperature_c
+        step = self.internal_step_s
+        d = state.position.shape[1]
+
+        def wrench(t: float) -> Array | None:
+            parts = [w for w in (pulse.wrench(t) for pulse in pulses) if w is not None]
+            return None if not parts else np.sum(parts, axis=0)
+
+        hold = self.mass_update is MassUpdate.EVERY_STEP
+        history = state.mass_history
+        # (M_k, dM/dt estimate, t_k) for the present step when M is extrapolated (MassUpdate.EVERY_STEP)
+        held: list[tuple[Array, Array, float] | None] = [None]
+
+        def extrapolate(q: Array, t_k: float) -> None:
+            nonlocal history
+            m_k = mass_terms(self.mechanism, q, theta_p)
+            # extrapolate only along the same payload (a payload change is a jump, not a rate)
+            use = history is not None and t_k > history[1] and np.array_equal(history[2], theta_p)
+            slope = (m_k - history[0]) / (t_k - history[1]) if use and history is not None else np.zeros_like(m_k)
+            held[0] = (m_k, slope, t_k)
+            history = (m_k, t_k, theta_p)
+
+        def accel(t: float, pos: Array, vel: Array) -> Array:
+            tau_a = self.effort_at(effort0, command, t - t0)
+            h_m = held[0]
+            m = None if h_m is None else h_m[0] + h_m[1] * (t - h_m[2])  # M_k + (M_k - M_k-1)/h (t - t_k)
+            return self.acceleration(pos, vel, tau_a, theta_p, temperature, wrench(t), mass_matrix=m)
+
+        pos, vel = state.position, state.velocity
+        if self.method is Method.SYMPLECTIC:
+            for k in range(n_steps):
+                if hold:
+                    extrapolate(pos[:, : self.n], t0 + k * step)
+                pos, vel = symplectic_euler_step(accel, t0 + k * step, pos, vel, step)
+        else:
+            f = second_order_derivative(accel, d)
+            x = np.concatenate([pos, vel], axis=1)
+            stepper = rk4_step if self.method is Method.RK4 else heun_step
+            for k in range(n_steps):
+                if hold:
+                    extrapolate(x[:, : self.n], t0 + k * step)
+                x = stepper(f, t0 + k * step, x, step)
+            pos, vel = x[:, :d], x[:, d:]
+        elapsed = n_steps * step
+        return replace(
+            state,
+            t_s=t0 + elapsed,
+            position=pos,
+            velocity=vel,
+            effort=self.effort_at(effort0, command, elapsed),
+            mass_history=history,
+        )
+
+    def drive_losses_w(self, state: PlantState) -> Array:
+        """P (B, n) = R_w(T) i^2 + |tau_f qd_m| [W], heat into each drive at this instant."""
+        _, qdm = self.motor_side(state)
+        friction_power = np.abs(self.friction_effort(qdm, state.temperature_c) * qdm)
+        if self.config.thermal is None or self.config.effort_per_ampere is None:
+            return friction_power
+        current = state.effort / self.config.effort_per_ampere
+        return self.config.thermal.copper_loss_w(current, state.temperature_c) + friction_power
+
+    def heat(self, state: PlantState, ambient_c: Array, step_s: float) -> PlantState:
+        """Thermal step of ``step_s`` with the present losses held (exact first-order step); no-op without a model."""
+        if self.config.thermal is None:
+            return state
+        ambient = np.asarray(ambient_c, dtype=float).reshape(-1, 1)
+        temperature = self.config.thermal.step(state.temperature_c, self.drive_losses_w(state), ambient, step_s)
+        return replace(state, temperature_c=temperature)
