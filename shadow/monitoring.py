@@ -287,8 +287,17 @@ class RobotMonitor:
         # the mass matrix and bias at each sample's own payload (the work piece comes and goes)
         M = _per_sample_mass(self, out.q, theta) if self.delta else self.model.mass_matrix(out.q, theta[0])
         beta = _momentum_bias(self, out.q, out.qd, theta)
-        _, events = self.collisions.update(out.t, out.effort - tau_f, M, beta, out.qd, out.q)
-        self._pending_events.extend(events)
+        tau = out.effort - tau_f
+        # a conditioning restart (gap in the stream) breaks the momentum integral: the robot moved while
+        # nobody watched, so the observer starts afresh there instead of reading the jump as a collision
+        restart_at = {int(np.searchsorted(out.t, r.t_s)) for r in out.restarts}
+        cuts = sorted({0, out.t.shape[0], *restart_at})
+        for a, b in zip(cuts[:-1], cuts[1:], strict=True):
+            if a in restart_at:
+                self.collisions.observer.restore(None)
+            s = slice(a, b)
+            _, events = self.collisions.update(out.t[s], tau[s], M[s], beta[s], out.qd[s], out.q[s])
+            self._pending_events.extend(events)
 
     def _release_events(self, t_now: float, results: StepResults) -> None:
         keep = []

@@ -106,3 +106,15 @@ def test_thresholds_follow_the_noise_and_the_false_alarm_target() -> None:
     assert np.all(collision_thresholds(2 * noise, rated, s) > base)  # noisier drive, higher threshold
     fewer = type(s)(tracker=s.tracker, false_alarms_per_day=0.01)
     assert np.all(collision_thresholds(noise, rated, fewer) > base)  # stricter false-alarm target, higher threshold
+
+
+def test_a_gap_in_the_stream_restarts_the_observer_instead_of_raising_a_collision() -> None:
+    stream = delta_stream(np.random.default_rng(9), duration_s=8.0)
+    batches = stream.batches("p4", 10)
+    kept = batches[:300] + batches[330:]  # 0.3 s missing while the robot moves: positions and momentum jump
+    monitor = RobotMonitor(ROBOT, stream.description)
+    res = run(monitor, kept)
+    assert res.events == []
+    gaps = [u for u in res.unmonitored if u["cause"] == "conditioning_restart"]
+    assert len(gaps) == 1 and gaps[0]["end_s"] == pytest.approx(stream.t[3300])
+    assert gaps[0]["start_s"] == pytest.approx(stream.t[2999])
