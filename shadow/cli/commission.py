@@ -15,6 +15,7 @@ it also calibrates each drive's current-to-effort gain by the added-mass method.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import datetime as dt
 import json
 import math
@@ -36,6 +37,7 @@ from shadow.estimation.commissioning import (
     baseline_from_identification,
     calibrate_gains,
     condition_run,
+    fit_sample_clock,
     identify_run,
     unseen_prior_std,
 )
@@ -83,7 +85,7 @@ class Recording:
 def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = commands.add_parser(
         "commission",
-        help="identify the healthy baseline (friction, offsets, payload, noise) from a recorded run",
+        help="identify a healthy baseline from a recorded run",
         description=__doc__,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
@@ -92,6 +94,12 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
     parser.add_argument("-o", "--output", type=Path, required=True, metavar="BASELINE.json", help="baseline file")
     parser.add_argument("--gain-run", type=Path, metavar="RECORDING2", help="the same motion with a test mass added")
     parser.add_argument("--test-mass-kg", type=float, metavar="M", help="the test mass of --gain-run [kg]")
+    parser.add_argument(
+        "--apply-gains",
+        action="store_true",
+        help="identify with the efforts corrected by the calibrated gains (needs --gain-run; the live side must "
+        "then apply the same gains)",
+    )
     parser.add_argument(
         "--robot", metavar="ID", help="accept recordings under this robot id (default: the description's name)"
     )
@@ -135,6 +143,12 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
         default=DEFAULT_MAX_CONDITION,
         metavar="K",
         help=f"directions weaker than 1/K of the best one count as unseen (default {DEFAULT_MAX_CONDITION:g})",
+    )
+    parser.add_argument(
+        "--fit-clock",
+        action="store_true",
+        help="move the time stamps onto a fitted fixed-rate clock before differentiating (for controllers that "
+        "sample on a fixed clock and stamp with jitter)",
     )
     parser.add_argument(
         "--no-lag", action="store_true", help="do not pass the model through the drives' current-loop lag"
@@ -285,11 +299,13 @@ def _settings(args: argparse.Namespace, description: RobotDescription) -> Commis
         current_loop_bandwidth_hz=bandwidth,
         confidence=args.confidence,
         max_condition=args.max_condition,
+        velocity_unit="rad/s" if rotary else "m/s",
     )
 
 
-def _conditioned(rec: Recording, settings: CommissioningSettings) -> ConditionedRun:
-    return condition_run(rec.t, rec.q, rec.effort, rec.gripping, settings)
+def _conditioned(rec: Recording, settings: CommissioningSettings, fit_clock: bool) -> ConditionedRun:
+    t = fit_sample_clock(rec.t) if fit_clock else rec.t
+    return condition_run(t, rec.q, rec.effort, rec.gripping, settings)
 
 
 def _test_parameters(description: RobotDescription, mass_kg: float) -> Array:
@@ -308,7 +324,21 @@ def run(args: argparse.Namespace) -> int:
     settings = _settings(args, description)
     model = build_model(description)
     rec = read_recording(args.recording, description, robot_id=args.robot)
-    run_c = _conditioned(rec, settings)
+    run_c = _conditioned(rec, settings, args.fit_clock)
+    if args.apply_gains and args.gain_run is None:
+        raise ConfigurationError("--apply-gains: needs --gain-run and --test-mass-kg")
+    gains = None
+    if args.gain_run is not None:
+        rec_b = read_recording(args.gain_run, description, robot_id=args.robot)
+        gains = calibrate_gains(
+            model,
+            run_c,
+            _conditioned(rec_b, settings, args.fit_clock),
+            _test_parameters(description, args.test_mass_kg),
+            settings,
+        )
+        if args.apply_gains:
+            run_c = dataclasses.replace(run_c, effort=run_c.effort * gains.gain)  # tau_true = gamma tau_nom
     nominal_payload = None
     if isinstance(description.tool, HexapodFixture):
         nominal_payload = description.tool.payload_parameters()
@@ -319,13 +349,8 @@ def run(args: argparse.Namespace) -> int:
         description.n_actuators,
         unseen_std=unseen_prior_std(run_c, ident, settings),
         nominal_friction=nominal_friction,
+        nominal_work_piece_kg=getattr(description.tool, "work_piece_mass_kg", None),
     )
-    gains = None
-    if args.gain_run is not None:
-        rec_b = read_recording(args.gain_run, description, robot_id=args.robot)
-        gains = calibrate_gains(
-            model, run_c, _conditioned(rec_b, settings), _test_parameters(description, args.test_mass_kg), settings
-        )
     doc = baseline_document(description, rec, run_c, settings, ident, baseline, gains, args)
     try:
         args.output.parent.mkdir(parents=True, exist_ok=True)
@@ -369,6 +394,7 @@ def baseline_document(
         "half_window": settings.half_window,
         "poly_order": settings.poly_order,
         "max_gap_s": settings.max_gap_s,
+        "fitted_clock": bool(args.fit_clock),
         "smooth_velocity": settings.smooth_velocity,
         "current_loop_lag": settings.current_loop_bandwidth_hz is not None,
         "estimator": "weighted least squares, weights 1/sigma per actuator, reweighted once",
@@ -380,10 +406,11 @@ def baseline_document(
         {
             "name": name,
             "value": float(ident.theta[j]),
-            "std": float(ident.std[j]),
-            "ci_low": float(ident.ci_low[j]),
-            "ci_high": float(ident.ci_high[j]),
+            "std": None if ident.held[j] else float(ident.std[j]),
+            "ci_low": _num(ident.ci_low[j]),
+            "ci_high": _num(ident.ci_high[j]),
             "identified": bool(ident.identified[j]),
+            "held": bool(ident.held[j]),
             "at_bound": bool(ident.at_bound[j]),
             "unit": _unit(name, rotary),
         }
@@ -394,7 +421,9 @@ def baseline_document(
         "condition_number": _num(ident.condition_number),
         "max_condition": settings.max_condition,
         "singular_values": ident.singular_values.tolist(),
-        "unseen": [{"parameters": list(u.parameters), "explanation": u.explanation} for u in ident.unseen],
+        "unseen": [
+            {"parameters": list(u.parameters), "held": list(u.held), "explanation": u.explanation} for u in ident.unseen
+        ],
         "motion": [
             {
                 "actuator": m.index + 1,
@@ -416,6 +445,7 @@ def baseline_document(
             "ci_high": gains.ci_high.tolist(),
             "noise_std": gains.noise_std.tolist(),
             "confidence": gains.confidence,
+            "applied": bool(args.apply_gains),
         }
     return doc
 
@@ -440,26 +470,35 @@ def report_lines(
         f"{'parameter':<18} {'estimate':>12} {level + ' interval':>28}  unit",
     ]
     for j, name in enumerate(ident.parameter_names):
-        if ident.identified[j]:
-            interval = f"[{ident.ci_low[j]:.5g}, {ident.ci_high[j]:.5g}]"
+        if ident.held[j]:
+            interval = "not seen: held at 0"
         else:
-            interval = "not seen by this run"
+            interval = f"[{ident.ci_low[j]:.5g}, {ident.ci_high[j]:.5g}]"
         flag = "  (at its bound)" if ident.at_bound[j] else ""
+        if not ident.identified[j] and not ident.held[j]:
+            flag += "  (not separable, see below)"
         lines.append(f"{name:<18} {ident.theta[j]:>12.5g} {interval:>28}  {_unit(name, rotary)}{flag}")
     unit = "N m" if rotary else "N"
-    lines.append("noise std per actuator: " + ", ".join(f"{i + 1}: {s:.4g} {unit}" for i, s in enumerate(ident.noise_std)))
+    lines.append(
+        "noise std per actuator: " + ", ".join(f"{i + 1}: {s:.4g} {unit}" for i, s in enumerate(ident.noise_std))
+    )
     lines.append(f"condition number (column-scaled regressor): {ident.condition_number:.4g}")
     if ident.unseen:
         lines.append("what the run could not see:")
         lines += [f"  - {u.explanation}" for u in ident.unseen]
-        lines.append("  (these start the live tracker from their nominal values with a wide uncertainty)")
+        lines.append(
+            "  (held parameters were left out of the fit; the baseline starts the live tracker from their "
+            "nominal values with a wide uncertainty)"
+        )
     else:
         lines.append("every parameter was seen by the run")
     if ident.payload_mode == "mass only":
         lines.append("  the run did not excite the payload's first and second moments: only its mass was estimated")
     if gains is not None:
         g_level = f"{100 * gains.confidence:g} %"
-        lines.append(f"drive gains (true effort per nominal effort), {g_level} intervals, test mass {args.test_mass_kg} kg:")
+        lines.append(
+            f"drive gains (true effort per nominal effort), {g_level} intervals, test mass {args.test_mass_kg} kg:"
+        )
         lines += [
             f"  actuator {i + 1}: {gains.gain[i]:.4f} [{gains.ci_low[i]:.4f}, {gains.ci_high[i]:.4f}]"
             for i in range(gains.gain.shape[0])

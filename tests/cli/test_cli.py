@@ -9,7 +9,7 @@ import pytest
 
 from shadow.cli import build_parser, main
 
-COMMANDS = ("demo", "serve", "robot")
+COMMANDS = ("demo", "serve", "robot", "commission")
 
 
 def run_cli(*args: str, timeout_s: float = 60) -> subprocess.CompletedProcess[str]:
