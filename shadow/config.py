@@ -26,6 +26,7 @@ Layout (every key documented in docs/service-config.md)::
     robot = "picker-1"
     description = "robots/picker.toml"      # robot description file (docs/robot-description.md)
     baseline = "baselines/picker-1.json"     # optional: commissioning output; absent: nominal from the description
+    sample_rate_hz = 1000                    # optional: the stream's nominal rate (default 1000)
 
 Relative paths are relative to the configuration file.
 """
@@ -54,6 +55,7 @@ class RobotEntry:
     address: RobotAddress
     description_path: Path
     baseline_path: Path | None = None
+    sample_rate_hz: float = 1000.0  # nominal rate of the controller's stream
 
     @property
     def robot_id(self) -> str:
@@ -85,7 +87,7 @@ _MQTT_KEYS = {
 }  # fmt: skip
 _DATABASE_KEYS = {"url", "raw_retention_s"}
 _API_KEYS = {"host", "port", "token_digests", "allow_unauthenticated_remote", "rate_per_s"}
-_ROBOT_KEYS = {"site", "cell", "robot", "description", "baseline"}
+_ROBOT_KEYS = {"site", "cell", "robot", "description", "baseline", "sample_rate_hz"}
 
 
 def _unknown(where: str, table: dict[str, Any], known: set[str]) -> None:
@@ -184,11 +186,15 @@ def _build(doc: dict[str, Any], base: Path, source: str) -> ServiceConfig:
             raise ConfigurationError(f"{where}: robot {address} is listed twice")
         seen.add(str(address))
         baseline = entry.get("baseline")
+        rate = entry.get("sample_rate_hz", 1000.0)
+        if not isinstance(rate, int | float) or not rate > 0:
+            raise ConfigurationError(f"{where}.sample_rate_hz: must be a number > 0, got {rate!r}")
         robots.append(
             RobotEntry(
                 address,
                 _path(base, entry["description"], f"{where}.description"),
                 None if baseline is None else _path(base, baseline, f"{where}.baseline"),
+                float(rate),
             )
         )
     return ServiceConfig(

@@ -7,7 +7,6 @@ unless the configuration names another address together with bearer tokens.
 from __future__ import annotations
 
 import argparse
-import json
 import logging
 import signal
 import threading
@@ -15,12 +14,13 @@ from pathlib import Path
 from types import FrameType
 from typing import Any
 
+from shadow.cli.commission import read_baseline_file
 from shadow.config import ServiceConfig, load_config
 from shadow.errors import ConfigurationError
 from shadow.estimation.baseline import Baseline
 from shadow.ingest.topics import TopicLayout
 from shadow.ingest.wire import PlausibilityLimits
-from shadow.monitoring import RobotMonitor
+from shadow.monitoring import RobotMonitor, default_settings
 from shadow.robots.description import load_description
 from shadow.service import RobotPipeline, Service, ServiceStatus, subscription_for
 from shadow.store.repository import SqlStore
@@ -43,19 +43,7 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
 
 def load_baseline(path: Path | None) -> Baseline | None:
     """A commissioning baseline file (``shadow commission`` output), or None to use the description's nominal."""
-    if path is None:
-        return None
-    try:
-        doc = json.loads(path.read_text())
-    except OSError as exc:
-        raise ConfigurationError(f"{path}: cannot read the baseline: {exc.strerror}") from exc
-    except json.JSONDecodeError as exc:
-        raise ConfigurationError(f"{path}: not valid JSON: {exc}") from exc
-    body = doc.get("baseline", doc) if isinstance(doc, dict) else doc
-    try:
-        return Baseline.from_dict(body)
-    except ConfigurationError as exc:
-        raise ConfigurationError(f"{path}: {exc}") from None
+    return None if path is None else read_baseline_file(path)[0]
 
 
 def build_service(config: ServiceConfig, store: SqlStore) -> Service:
@@ -71,7 +59,8 @@ def build_service(config: ServiceConfig, store: SqlStore) -> Service:
             n_actuators=description.n_actuators,
             description_source=str(entry.description_path),
         )
-        monitor = RobotMonitor(entry.robot_id, description, load_baseline(entry.baseline_path))
+        settings = default_settings(description, sample_rate_hz=entry.sample_rate_hz)
+        monitor = RobotMonitor(entry.robot_id, description, load_baseline(entry.baseline_path), settings)
         sub = subscription_for(entry.address, layout, config.mqtt)
         params = description.parameters
         limits = (

@@ -118,7 +118,7 @@ def actuator_health(
         ratio = np.where(baseline_rms > 0.0, residual_rms / baseline_rms, np.nan)  # RMS / baseline RMS
     out = []
     for i in range(n):  # loop over actuators
-        name = f"actuator {i}"
+        name = f"actuator {i + 1}"  # 1-based, as in the parameter names
         figures = {
             "residual_rms_ratio": float(ratio[i]),
             "wear_indicator_ratio": float(wear_indicator[i]),

@@ -152,6 +152,7 @@ class RobotSubscription:
         self.connected = threading.Event()
         self._pending_acks: deque[int] = deque()  # mids in arrival order, not yet acknowledged
         self._lock = threading.Lock()
+        self._stopping = False
         self._client = self._build_client()
 
     def _build_client(self) -> mqtt.Client:
@@ -210,6 +211,8 @@ class RobotSubscription:
     def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any, properties: Any) -> None:
         self.connected.clear()
         self.counters.disconnects += 1
+        if self._stopping:
+            return
         log.warning("robot %s: disconnected from broker (%s); paho reconnects with back-off", self.robot_id, reason)
 
     def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
@@ -271,6 +274,7 @@ class RobotSubscription:
 
     def stop(self) -> None:
         """Disconnect cleanly (the broker keeps the session and any unacknowledged messages)."""
+        self._stopping = True
         self._client.disconnect()
         self._client.loop_stop()
         self.connected.clear()

@@ -2,12 +2,17 @@
 
 from __future__ import annotations
 
+import signal
 import subprocess
 import sys
+import time
+from pathlib import Path
 
+import httpx
 import pytest
 
 from shadow.cli import build_parser, main
+from tests.servers import free_loopback_port
 
 COMMANDS = ("demo", "serve", "robot", "commission")
 
@@ -63,9 +68,35 @@ def test_demo_rejects_a_negative_duration() -> None:
 
 
 @pytest.mark.mosquitto
-def test_demo_runs_and_stops_after_its_duration() -> None:
-    result = run_cli("demo", "--duration", "2", timeout_s=120)
-    assert result.returncode == 0, result.stderr
-    assert "advisory only" in result.stdout
-    assert "broker: mosquitto on mqtt://127.0.0.1:" in result.stdout
-    assert "demo stopped" in result.stdout
+@pytest.mark.slow
+def test_demo_commissions_follows_both_robots_and_stops(tmp_path: Path) -> None:
+    port = free_loopback_port()
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "shadow", "demo", "--duration", "90", "--port", str(port), "--workdir", str(tmp_path),
+         "--commission-s", "6"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+    )  # fmt: skip
+    seen: dict[str, object] = {}
+    try:
+        deadline = time.monotonic() + 85
+        while time.monotonic() < deadline and proc.poll() is None:
+            try:
+                robots = httpx.get(f"http://127.0.0.1:{port}/api/v1/robots", timeout=2).json()["robots"]
+            except (httpx.HTTPError, ValueError):
+                time.sleep(1)
+                continue
+            seen = {r["robot_id"]: r["health"] for r in robots}
+            if len(seen) == 2 and all(h is not None for h in seen.values()):
+                break
+            time.sleep(1)
+        proc.send_signal(signal.SIGTERM)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, err
+    assert set(seen) == {"demo-site/cell-1/picker-1", "demo-site/cell-1/aligner-1"}
+    assert all(h is not None for h in seen.values()), seen  # both robots were assessed from the live stream
+    assert "advisory only" in out and "broker: mosquitto on mqtt://127.0.0.1:" in out
+    assert f"dashboard: http://127.0.0.1:{port}/" in out and "demo stopped" in out
+    assert (tmp_path / "picker-1-baseline.json").exists() and (tmp_path / "aligner-1-baseline.json").exists()

@@ -61,8 +61,12 @@ def test_actuator_limits(ratio, wear, expected):
 
 def test_reason_words_carry_numbers():
     acts = _actuators(ratio=(1.0, 2.0, 1.0), wear=(1.2, 1.0, 1.0))
-    assert "actuator 1" in acts[1].reasons[0] and "2.00 times" in acts[1].reasons[0]
-    assert "20 % above" in acts[0].reasons[0] and "watch from 15 %" in acts[0].reasons[0]
+    assert "actuator 2" in acts[1].reasons[0] and "2.00 times" in acts[1].reasons[0]
+    assert (
+        "actuator 1" in acts[0].reasons[0]
+        and "20 % above" in acts[0].reasons[0]
+        and "watch from 15 %" in acts[0].reasons[0]
+    )
 
 
 def test_collisions_and_payload():
