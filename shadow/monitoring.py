@@ -13,7 +13,15 @@ analysis and the tests all run exactly the same code. Per batch of samples:
    with the friction estimated by the filter taken off the measured effort and the mass matrix at the
    estimated payload; each event gets an evidence window of raw samples (default 1 s each side),
    written once the stream has passed the window's end;
-5. health per actuator and for the robot (:mod:`shadow.detection.health`).
+5. payload faults (delta): the carried mass of every transfer (a stretch with the tool gripping), estimated from
+   that transfer alone with the filter's tool mass and friction taken off, checked against the work piece the
+   description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance);
+6. health per actuator and for the robot (:mod:`shadow.detection.health`).
+
+Carried mass of a transfer (weighted least squares on one scalar, the work-piece column of the regressor):
+``z_k = tau_meas_k - tau_known_k - Y_p,k m_tool - tau_f,k``, ``m = sum Y^T W z / sum Y^T W Y`` with
+``W = diag(1 / sigma_i^2)``, std ``1 / sqrt(sum Y^T W Y)`` (e.g. Montgomery, Peck and Vining, "Introduction to
+Linear Regression Analysis", weighted least squares; from memory).
 
 Collision thresholds (per actuator): the observer is a first-order low-pass of gain K_O on the effort
 noise, so white effort noise of std sigma gives a residual of std
@@ -69,6 +77,9 @@ class MonitorSettings:
     evidence_before_s: float = 1.0
     evidence_after_s: float = 1.0
     health_limits: HealthLimits = field(default_factory=HealthLimits)
+    min_transfer_s: float = 0.1  # shorter gripping stretches are not judged
+    double_pick_ratio: float = 1.5  # carried / expected above this: two work pieces
+    missed_pick_ratio: float = 0.5  # carried / expected below this: nothing carried
 
 
 def nominal_baseline(description: RobotDescription) -> Baseline:
@@ -185,6 +196,9 @@ class RobotMonitor:
         self._pending_events: list[CollisionEvent] = []
         self._recent_collisions: list[CollisionEvent] = []
         self._last_seq = 0
+        self._transfer = np.zeros(5)  # open transfer: [gripping, sum YWz, sum YWY, start_s, n]
+        self._x_prior = np.zeros(0)  # filter estimate before the current output (not yet pulled by it)
+        self._std_prior = np.zeros(0)
 
     # ---------------------------------------------------------------- processing
     def process(self, batch: SampleBatch) -> StepResults:
@@ -272,6 +286,12 @@ class RobotMonitor:
                 }
             )
         self._collisions_for(out)
+        if self.delta:
+            # judge transfers against the estimate from before this output, so that an odd transfer has not
+            # yet pulled the tool mass and friction toward itself
+            settled = self._x_prior.shape == out.x.shape and self._std_prior[0] <= self._settled_tool_std_kg()
+            self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled)
+        self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
         self._health_for(out, rms, t_end, results)
 
     def _collisions_for(self, out: TrackerOutput) -> None:
@@ -298,6 +318,93 @@ class RobotMonitor:
             s = slice(a, b)
             _, events = self.collisions.update(out.t[s], tau[s], M[s], beta[s], out.qd[s], out.q[s])
             self._pending_events.extend(events)
+
+    def _settled_tool_std_kg(self) -> float:
+        """Transfers are judged once the tool mass is known this well (a quarter of the work piece's tolerance)."""
+        return 0.25 * float(self.description.tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
+
+    def _transfers_for(self, out: TrackerOutput, x: Array, results: StepResults, *, judge: bool) -> None:
+        """Close every transfer that ended in this output and judge its carried mass (x: filter estimate).
+
+        Until the estimator has settled (``judge`` False) transfers are followed but not judged."""
+        n_pay = self.tracker.n_payload
+        tau_f = friction_effort(
+            out.qd,
+            x[n_pay:],
+            smooth_velocity=self.settings.tracker.smooth_velocity,
+            stribeck_velocity=self.settings.tracker.stribeck_velocity,
+        )
+        y = out.Y_payload[:, :, 0]  # (K, n) work-piece column
+        z = out.effort - out.tau_known - y * x[0] - tau_f  # what the carried mass must explain
+        w = 1.0 / np.maximum(out.noise_std, 1e-12) ** 2  # W = diag(1 / sigma^2)
+        ywz = np.sum(y * w * z, axis=1)  # per sample: Y^T W z
+        ywy = np.sum(y * w * y, axis=1)  # per sample: Y^T W Y
+        grip = out.gripping > 0.5
+        open_, s_yz, s_yy, start, count = self._transfer
+        edges = np.flatnonzero(np.diff(np.concatenate([[bool(open_)], grip]).astype(np.int8)))  # state changes
+        a = 0
+        state = bool(open_)
+        for e in [*edges, out.t.shape[0]]:  # loop over tool-state changes, each run summed in bulk
+            if state:  # samples a..e-1 belong to the open transfer
+                s_yz += float(ywz[a:e].sum())
+                s_yy += float(ywy[a:e].sum())
+                count += e - a
+                if e < out.t.shape[0]:  # the tool let go at sample e: the transfer is complete
+                    end = float(out.t[e - 1]) if e > 0 else float(out.t[0])
+                    if judge:
+                        self._judge_transfer(start, end, s_yz, s_yy, int(count), results)
+                    s_yz, s_yy, count = 0.0, 0.0, 0
+            elif e < out.t.shape[0]:  # the tool closed at sample e: a transfer starts
+                start, s_yz, s_yy, count = float(out.t[e]), 0.0, 0.0, 0
+            state = not state if e < out.t.shape[0] else state
+            a = e
+        self._transfer = np.array([float(state), s_yz, s_yy, start, count])
+
+    def _judge_transfer(
+        self, start: float, end: float, s_yz: float, s_yy: float, count: int, results: StepResults
+    ) -> None:
+        s = self.settings
+        if end - start < s.min_transfer_s or s_yy <= 0.0:
+            return
+        if any(c.start_time_s <= end and c.end_time_s >= start for c in self._pending_events + self._recent_collisions):
+            return  # a collision during the transfer: its force is not the work piece's weight
+        tool = self.description.tool
+        expected = float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
+        tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
+        m = s_yz / s_yy  # weighted least squares of the carried mass
+        std = 1.0 / np.sqrt(s_yy)
+        ratio = m / expected if expected > 0 else np.inf
+        if ratio < s.missed_pick_ratio:
+            fault, words = "missed_pick", "the tool closed but carried nothing"
+        elif ratio > s.double_pick_ratio:
+            fault, words = "double_pick", "the tool carried about two work pieces"
+        elif abs(m - expected) > tolerance + 3.0 * std:
+            fault, words = "wrong_work_piece", "the carried mass is outside the work piece's tolerance"
+        else:
+            return
+        results.events.append(
+            {
+                "kind": "payload_fault",
+                "start_s": start,
+                "end_s": end,
+                "severity": "medium",
+                "summary": (
+                    f"{fault.replace('_', ' ')}: {words} ({m:.3f} kg, expected {expected:.3f} +- {tolerance:.3f} kg)"
+                ),
+                "figures": {
+                    "fault": fault,
+                    "carried_mass_kg": float(m),
+                    "carried_mass_std_kg": float(std),
+                    "expected_mass_kg": expected,
+                    "tolerance_kg": tolerance,
+                    "samples_count": count,
+                },
+                "evidence_start_s": start,
+                "evidence_end_s": end,
+                "evidence": None,
+                "source_seq": self._last_seq,
+            }
+        )
 
     def _release_events(self, t_now: float, results: StepResults) -> None:
         keep = []
@@ -393,6 +500,9 @@ class RobotMonitor:
             state.update(_events_to_arrays(f"{name}/", events))
         state.update(self._raw.save("raw/"))
         state["last_seq"] = np.array(self._last_seq)
+        state["transfer"] = self._transfer.copy()
+        state["x_prior"] = self._x_prior.copy()
+        state["std_prior"] = self._std_prior.copy()
         return state
 
     def restore_state(self, state: dict[str, np.ndarray]) -> None:
@@ -421,6 +531,9 @@ class RobotMonitor:
         self._recent_collisions = _events_from_arrays("recent/", state)
         self._raw = _RawBuffer.restore(self.n, "raw/", state)
         self._last_seq = int(state["last_seq"])
+        self._transfer = np.asarray(state["transfer"], dtype=float).copy()
+        self._x_prior = np.asarray(state["x_prior"], dtype=float).copy()
+        self._std_prior = np.asarray(state["std_prior"], dtype=float).copy()
 
 
 def _same_layout_runs(batches: list[SampleBatch]) -> list[list[SampleBatch]]:

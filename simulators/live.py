@@ -41,6 +41,8 @@ class FeedSettings:
     impact_probability: float = 0.3  # share of windows with one impact
     impact_peak_rated_fraction: float = 0.3  # platform force peak / (rated effort / lever): see _impact_peak
     impact_duration_s: float = 0.03
+    missed_pick_probability: float = 0.03  # delta: the gripper closes on nothing
+    double_pick_probability: float = 0.03  # delta: two work pieces lifted at once
     effects: DemoEffects = field(default_factory=lambda: DemoEffects(coupling_frequency_hz=None, jitter_std_s=2e-6))
 
 
@@ -57,6 +59,7 @@ class Window:
     impact_start_s: float | None
     impact_peak_n: float
     payload: Array  # (T, p) true payload parameters
+    work_piece_masses_kg: list[float]  # delta: mass lifted in each cycle of the path (0: missed pick)
 
 
 def _impact_peak(description: RobotDescription, fraction: float) -> float:
@@ -77,13 +80,23 @@ def simulate_windows(description: RobotDescription, rng: np.random.Generator, se
     )
     if description.family == "delta":
         home = np.asarray(description.home_position_m, dtype=float)
-        tool_mass = description.tool.tool_mass_kg  # type: ignore[union-attr]
+        tool = description.tool
         n_cycles = int(np.ceil(settings.window_s / 0.8)) + 1
-        paths = [
-            delta_pick_place(rng, n_cycles, centre_m=home + np.array([-0.15, 0.0, 0.0]), tool_mass_kg=tool_mass).path
+        cycles = [
+            delta_pick_place(
+                rng,
+                n_cycles,
+                centre_m=home + np.array([-0.15, 0.0, 0.0]),
+                tool_mass_kg=tool.tool_mass_kg,  # type: ignore[union-attr]
+                workpiece_mass_mean_kg=tool.work_piece_mass_kg,  # type: ignore[union-attr]
+                workpiece_mass_std_kg=tool.work_piece_tolerance_kg / 3.0,  # type: ignore[union-attr]
+                missed_pick_probability=settings.missed_pick_probability,
+                double_pick_probability=settings.double_pick_probability,
+            )
             for _ in range(b)
         ]
-        reference = delta_reference(plant.mechanism, paths, t)[0]
+        reference = delta_reference(plant.mechanism, [c.path for c in cycles], t)[0]
+        picked = [c.workpiece_mass_kg.tolist() for c in cycles]
         direction = np.tile([1.0, 0.0, 0.0], (b, 1))
         n = 3
     else:
@@ -97,6 +110,7 @@ def simulate_windows(description: RobotDescription, rng: np.random.Generator, se
         reference = hexapod_reference(plant.mechanism, samples)
         direction = np.tile([0.0, 1.0, 0.0, 0.0, 0.0, 0.0], (b, 1))
         n = 6
+        picked = [[] for _ in range(b)]
     has_impact = rng.random(b) < settings.impact_probability
     start = rng.uniform(0.5, settings.window_s - 1.5, b)
     peak = np.where(has_impact, _impact_peak(description, settings.impact_peak_rated_fraction), 0.0)
@@ -124,6 +138,7 @@ def simulate_windows(description: RobotDescription, rng: np.random.Generator, se
             impact_start_s=float(start[i]) if has_impact[i] else None,
             impact_peak_n=float(peak[i]),
             payload=rec.reference.theta_p[i],
+            work_piece_masses_kg=picked[i],
         )
         for i in range(b)
     ]
@@ -209,6 +224,7 @@ class Feed:
                             "impact_start_s": None if window.impact_start_s is None else t + window.impact_start_s,
                             "impact_peak_n": window.impact_peak_n,
                             "payload_mean": window.payload.mean(axis=0).tolist(),
+                            "work_piece_masses_kg": window.work_piece_masses_kg,
                         }
                     )
                     batches = window_batches(

@@ -160,6 +160,8 @@ def delta_pick_place(
     workpiece_mass_mean_kg: float = 0.3,
     workpiece_mass_std_kg: float = 0.05,
     law: MotionLaw = MotionLaw.POLY4567,
+    missed_pick_probability: float = 0.0,
+    double_pick_probability: float = 0.0,
 ) -> PickPlaceCycles:
     """Pick-and-place cycles about ``centre_m`` (3,): up 25 mm, across 305 mm, down 25 mm, dwell, and back.
 
@@ -169,6 +171,9 @@ def delta_pick_place(
     toward a target drawn around the mirror of the centre, the next pick point 305 mm back toward a target
     drawn around the centre (targets uniform in a disc of radius ``spread_m``), so the points wander but
     stay near their nominal places. theta_p = [tool mass + work-piece mass while gripping].
+
+    Faults: with ``missed_pick_probability`` a cycle's gripper closes on nothing (mass 0), with
+    ``double_pick_probability`` it lifts two work pieces (twice the drawn mass).
     """
     if n_cycles < 1:
         raise ConfigurationError(f"n_cycles: must be >= 1, got {n_cycles}")
@@ -195,6 +200,11 @@ def delta_pick_place(
     payloads: list[Array] = []
     picks, places = [], []
     masses = np.clip(rng.normal(workpiece_mass_mean_kg, workpiece_mass_std_kg, size=n_cycles), 0.0, None)
+    if missed_pick_probability > 0.0 or double_pick_probability > 0.0:  # drawn only then: seeded runs stay as before
+        u = rng.uniform(size=n_cycles)
+        masses = np.where(u < missed_pick_probability, 0.0, masses)
+        masses = np.where((u >= missed_pick_probability) & (u < missed_pick_probability + double_pick_probability),
+                          2.0 * masses, masses)  # fmt: skip
     empty = np.array([tool_mass_kg])
     for c in range(n_cycles):
         place = toward(pick, target(place_centre))

@@ -59,8 +59,13 @@ def delta_stream(
     impact_peak_n: float = 60.0,
     impact_duration_s: float = 0.03,
     noise_rated_fraction: float = 0.005,
+    transfer_masses_kg: dict[int, float] | None = None,
 ) -> SyntheticStream:
-    """Sum-of-sines joint motion around home, tool cycling every second, optional half-sine impact along +x."""
+    """Sum-of-sines joint motion around home, tool cycling every second, optional half-sine impact along +x.
+
+    The tool grips for 1 s every 2 s (transfer k from 2 k to 2 k + 1 s) and carries the described work piece,
+    or ``transfer_masses_kg[k]`` for the transfers listed there.
+    """
     d = load_description(EXAMPLE_DELTA)
     m = build_model(d)
     t_rel = np.arange(int(round(duration_s * rate_hz))) / rate_hz
@@ -71,7 +76,10 @@ def delta_stream(
     qdd = -0.25 * w**2 * np.sin(w * t_rel[:, None])
     grip = np.sin(2 * np.pi * 0.5 * t_rel) > 0
     tool = d.tool
-    theta = tool.tool_mass_kg + tool.work_piece_mass_kg * grip  # type: ignore[union-attr]
+    carried = np.full(t_rel.shape[0], tool.work_piece_mass_kg)  # type: ignore[union-attr]
+    for k, mass in (transfer_masses_kg or {}).items():
+        carried[(t_rel >= 2.0 * k) & (t_rel < 2.0 * k + 2.0)] = mass
+    theta = tool.tool_mass_kg + carried * grip  # type: ignore[union-attr]
     tau0 = m.inverse_dynamics(q, qd, qdd, np.zeros(1))
     tau1 = m.inverse_dynamics(q, qd, qdd, np.ones(1))
     tau = tau0 + (tau1 - tau0) * theta[:, None]  # ID is affine in the payload mass

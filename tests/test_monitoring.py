@@ -30,7 +30,7 @@ def impact_run() -> tuple:
 
 def test_impact_is_found_at_its_time_with_the_force_direction(impact_run: tuple) -> None:
     stream, monitor, res = impact_run
-    (event,) = res.events
+    (event,) = [e for e in res.events if e["kind"] == "collision"]
     delay_s = event["start_s"] - (EPOCH_S + 12.0)
     assert 0.0 <= delay_s <= 0.02  # detection delay target: 20 ms
     f = np.array(event["figures"]["platform_force_n"])
@@ -46,7 +46,8 @@ def test_impact_is_found_at_its_time_with_the_force_direction(impact_run: tuple)
 
 def test_evidence_window_holds_the_raw_samples_around_the_event(impact_run: tuple) -> None:
     stream, _, res = impact_run
-    (event,) = res.events
+    (event,) = [e for e in res.events if e["kind"] == "collision"]
+    assert [e for e in res.events if e["kind"] != "collision"] == []  # the impact is not read as a payload fault
     ev = decode_message(event["evidence"])
     assert ev.t[0] == pytest.approx(event["start_s"] - 1.0, abs=2e-3)
     assert ev.t[-1] == pytest.approx(event["end_s"] + 1.0, abs=2e-3)
@@ -118,3 +119,16 @@ def test_a_gap_in_the_stream_restarts_the_observer_instead_of_raising_a_collisio
     gaps = [u for u in res.unmonitored if u["cause"] == "conditioning_restart"]
     assert len(gaps) == 1 and gaps[0]["end_s"] == pytest.approx(stream.t[3300])
     assert gaps[0]["start_s"] == pytest.approx(stream.t[2999])
+
+
+def test_missed_and_double_picks_are_found_per_transfer() -> None:
+    stream = delta_stream(np.random.default_rng(21), duration_s=16.0, transfer_masses_kg={3: 0.0, 5: 0.29, 6: 0.5})
+    res = run(RobotMonitor(ROBOT, stream.description), stream.batches("p4", 100))
+    faults = [e for e in res.events if e["kind"] == "payload_fault"]
+    found = {round(e["start_s"] - EPOCH_S): e["figures"]["fault"] for e in faults}
+    # transfers k start at 2 k s (tool state of the stream); 0.29 kg is outside 0.25 +- 0.02 kg
+    assert found == {6: "missed_pick", 10: "wrong_work_piece", 12: "double_pick"}
+    by_fault = {e["figures"]["fault"]: e["figures"] for e in faults}
+    assert by_fault["double_pick"]["carried_mass_kg"] == pytest.approx(0.5, abs=0.02)
+    assert by_fault["missed_pick"]["carried_mass_kg"] == pytest.approx(0.0, abs=0.02)
+    assert by_fault["wrong_work_piece"]["carried_mass_kg"] == pytest.approx(0.29, abs=0.01)

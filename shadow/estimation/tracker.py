@@ -113,6 +113,8 @@ class TrackerOutput:
     qd: Array  # (K, n) their Savitzky-Golay velocities
     effort: Array  # (K, n) measured efforts aligned with q, qd [N m | N]
     gripping: Array  # (K,) tool state aligned with q (1.0 gripping, 0.0 not)
+    tau_known: Array  # (K, n) the model's effort without payload, before the current-loop lag [N m | N]
+    Y_payload: Array  # (K, n, p_model) the model's payload regressor, before the lag
 
     @property
     def n_samples(self) -> int:
@@ -364,6 +366,8 @@ class PayloadFrictionTracker:
             qd=s["qd"].copy(),
             effort=s["effort"].copy(),
             gripping=grip.copy(),
+            tau_known=tau_known,
+            Y_payload=Y_p,
         )
 
     # ------------------------------------------------------------------ state
