@@ -51,6 +51,7 @@ from shadow.detection.momentum_observer import (
     CollisionSettings,
     ObserverState,
     alpha_for_false_alarm_rate,
+    residual_thresholds,
 )
 from shadow.errors import ShadowError
 from shadow.estimation.baseline import Baseline
@@ -149,6 +150,21 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
     return MonitorSettings(tracker=tracker, sample_rate_hz=sample_rate_hz)
 
 
+def calibrated_thresholds(residual: Array, settings: MonitorSettings, *, margin: float = 1.25) -> Array:
+    """Collision thresholds from the observer residual of a healthy run (N, n) [N m | N].
+
+    The larger of the Gaussian bound ``z_(1 - alpha/2) sigma_r`` for the false-alarm target
+    (:func:`~shadow.detection.momentum_observer.residual_thresholds`) and ``margin`` times the largest
+    healthy |r|: a healthy run's residual is not Gaussian (what the rigid model leaves out comes with the
+    motion), and its own peaks must not count as collisions.
+    """
+    alpha = alpha_for_false_alarm_rate(settings.false_alarms_per_day / 24.0, settings.sample_rate_hz)
+    settle = int(5.0 * settings.sample_rate_hz / settings.observer_gain_per_s)  # five observer time constants
+    gaussian = residual_thresholds(residual, alpha, settle_samples=settle)
+    peak = np.max(np.abs(residual[settle:]), axis=0)
+    return np.maximum(gaussian, margin * peak)
+
+
 def collision_thresholds(noise_std: Array, rated: Array, settings: MonitorSettings) -> Array:
     """Per-actuator collision thresholds [N m | N], see the module docstring."""
     dt = 1.0 / settings.sample_rate_hz
@@ -179,7 +195,11 @@ class RobotMonitor:
         self.n = len(drives)
         self.rated = np.array([d.rated_effort for d in drives], dtype=float)
         K_O = np.full(self.n, self.settings.observer_gain_per_s)
-        self.thresholds = collision_thresholds(self.baseline.noise_std, self.rated, self.settings)
+        if self.baseline.collision_threshold is not None:  # calibrated on the healthy run (shadow commission)
+            self.thresholds = np.asarray(self.baseline.collision_threshold, dtype=float)
+        else:
+            self.thresholds = collision_thresholds(self.baseline.noise_std, self.rated, self.settings)
+        self.residual_log: list[Array] | None = None  # set to [] to keep every observer residual (calibration)
         self.collisions = CollisionMonitor(
             K_O,
             CollisionSettings(
@@ -196,7 +216,8 @@ class RobotMonitor:
         self._pending_events: list[CollisionEvent] = []
         self._recent_collisions: list[CollisionEvent] = []
         self._last_seq = 0
-        self._transfer = np.zeros(5)  # open transfer: [gripping, sum YWz, sum YWY, start_s, n]
+        self._transfer = np.zeros((0, 3 + self.n))  # open transfer per sample: t, Y^T W z, Y^T W Y, |Y_p|
+        self._transfer_open = False
         self._x_prior = np.zeros(0)  # filter estimate before the current output (not yet pulled by it)
         self._std_prior = np.zeros(0)
 
@@ -240,7 +261,6 @@ class RobotMonitor:
         results = StepResults(self.robot_id)
         for out in outputs:
             self._rows_for(out, results)
-        self._release_events(float(t[-1]), results)
         self._raw.trim(float(t[-1]) - self._raw_keep_s())
         return results
 
@@ -292,6 +312,7 @@ class RobotMonitor:
             settled = self._x_prior.shape == out.x.shape and self._std_prior[0] <= self._settled_tool_std_kg()
             self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled)
         self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
+        self._release_events(t_end, results)
         self._health_for(out, rms, t_end, results)
 
     def _collisions_for(self, out: TrackerOutput) -> None:
@@ -316,17 +337,20 @@ class RobotMonitor:
             if a in restart_at:
                 self.collisions.observer.restore(None)
             s = slice(a, b)
-            _, events = self.collisions.update(out.t[s], tau[s], M[s], beta[s], out.qd[s], out.q[s])
+            r, events = self.collisions.update(out.t[s], tau[s], M[s], beta[s], out.qd[s], out.q[s])
             self._pending_events.extend(events)
+            if self.residual_log is not None:
+                self.residual_log.append(r)
 
     def _settled_tool_std_kg(self) -> float:
         """Transfers are judged once the tool mass is known this well (a quarter of the work piece's tolerance)."""
         return 0.25 * float(self.description.tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
 
     def _transfers_for(self, out: TrackerOutput, x: Array, results: StepResults, *, judge: bool) -> None:
-        """Close every transfer that ended in this output and judge its carried mass (x: filter estimate).
+        """Follow the open transfer through this output and judge every transfer that ended in it.
 
-        Until the estimator has settled (``judge`` False) transfers are followed but not judged."""
+        ``x`` is the filter estimate the transfer is judged against; until the estimator has settled
+        (``judge`` False) transfers are followed but not judged."""
         n_pay = self.tracker.n_payload
         tau_f = friction_effort(
             out.qd,
@@ -337,37 +361,45 @@ class RobotMonitor:
         y = out.Y_payload[:, :, 0]  # (K, n) work-piece column
         z = out.effort - out.tau_known - y * x[0] - tau_f  # what the carried mass must explain
         w = 1.0 / np.maximum(out.noise_std, 1e-12) ** 2  # W = diag(1 / sigma^2)
-        ywz = np.sum(y * w * z, axis=1)  # per sample: Y^T W z
-        ywy = np.sum(y * w * y, axis=1)  # per sample: Y^T W Y
+        terms = np.column_stack([out.t, np.sum(y * w * z, axis=1), np.sum(y * w * y, axis=1), np.abs(y)])
         grip = out.gripping > 0.5
-        open_, s_yz, s_yy, start, count = self._transfer
-        edges = np.flatnonzero(np.diff(np.concatenate([[bool(open_)], grip]).astype(np.int8)))  # state changes
-        a = 0
-        state = bool(open_)
-        for e in [*edges, out.t.shape[0]]:  # loop over tool-state changes, each run summed in bulk
+        was_open = self._transfer.shape[0] > 0 or self._transfer_open
+        edges = np.flatnonzero(np.diff(np.concatenate([[was_open], grip]).astype(np.int8)))  # tool-state changes
+        a, state = 0, was_open
+        for e in [*edges, out.t.shape[0]]:  # loop over tool-state changes, each run taken in bulk
             if state:  # samples a..e-1 belong to the open transfer
-                s_yz += float(ywz[a:e].sum())
-                s_yy += float(ywy[a:e].sum())
-                count += e - a
+                self._transfer = np.concatenate([self._transfer, terms[a:e]])
                 if e < out.t.shape[0]:  # the tool let go at sample e: the transfer is complete
-                    end = float(out.t[e - 1]) if e > 0 else float(out.t[0])
-                    if judge:
-                        self._judge_transfer(start, end, s_yz, s_yy, int(count), results)
-                    s_yz, s_yy, count = 0.0, 0.0, 0
-            elif e < out.t.shape[0]:  # the tool closed at sample e: a transfer starts
-                start, s_yz, s_yy, count = float(out.t[e]), 0.0, 0.0, 0
+                    if judge and self._transfer.shape[0]:
+                        self._judge_transfer(self._transfer, float(x[1]), results)
+                    self._transfer = np.zeros((0, 3 + self.n))
             state = not state if e < out.t.shape[0] else state
             a = e
-        self._transfer = np.array([float(state), s_yz, s_yy, start, count])
+        self._transfer_open = bool(state)
 
-    def _judge_transfer(
-        self, start: float, end: float, s_yz: float, s_yy: float, count: int, results: StepResults
-    ) -> None:
+    def _judge_transfer(self, terms: Array, assumed_kg: float, results: StepResults) -> None:
+        """Judge one transfer from its per-sample terms (K, 3 + n): t, Y^T W z, Y^T W Y, |Y_p| per actuator.
+
+        Samples around a collision the observer found inside the transfer are left out of the mass estimate
+        (an impact's force is not the work piece's weight). If the transfer is still a payload fault, the
+        collisions that the wrong mass alone explains are folded into it: the observer ran with the filter's
+        work-piece mass ``assumed_kg``, so a wrong mass shows there as an external effort of at most
+        ``|m - assumed| max |Y_p|`` per actuator (plus its threshold); larger ones stay collisions.
+        """
         s = self.settings
-        if end - start < s.min_transfer_s or s_yy <= 0.0:
+        t = terms[:, 0]
+        start, end = float(t[0]), float(t[-1])
+        if end - start < s.min_transfer_s:
             return
-        if any(c.start_time_s <= end and c.end_time_s >= start for c in self._pending_events + self._recent_collisions):
-            return  # a collision during the transfer: its force is not the work piece's weight
+        inside = [c for c in self._pending_events if c.start_time_s <= end + 0.05 and c.end_time_s >= start - 0.05]
+        keep = np.ones(t.shape[0], dtype=bool)
+        for c in inside:
+            keep &= ~((t >= c.start_time_s - 0.02) & (t <= c.end_time_s + 0.05))
+        s_yz, s_yy = float(terms[keep, 1].sum()), float(terms[keep, 2].sum())
+        if s_yy <= 0.0 or keep.sum() < 0.25 * t.shape[0]:
+            return  # too little of the transfer left to weigh the work piece
+        count = int(keep.sum())
+        y_max = terms[:, 3:].max(axis=0)
         tool = self.description.tool
         expected = float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
         tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
@@ -382,6 +414,10 @@ class RobotMonitor:
             fault, words = "wrong_work_piece", "the carried mass is outside the work piece's tolerance"
         else:
             return
+        explainable = np.abs(m - assumed_kg) * y_max + self.thresholds  # [N m | N]
+        inside = [c for c in self._pending_events if c.start_time_s <= end + 0.05 and c.end_time_s >= start - 0.05]
+        explained = [c for c in inside if np.all(np.abs(c.peak_residual) <= 1.5 * explainable)]
+        self._pending_events = [c for c in self._pending_events if all(c is not e for e in explained)]
         results.events.append(
             {
                 "kind": "payload_fault",
@@ -398,6 +434,7 @@ class RobotMonitor:
                     "expected_mass_kg": expected,
                     "tolerance_kg": tolerance,
                     "samples_count": count,
+                    "observer_alarms_explained_count": len(explained),
                 },
                 "evidence_start_s": start,
                 "evidence_end_s": end,
@@ -408,8 +445,10 @@ class RobotMonitor:
 
     def _release_events(self, t_now: float, results: StepResults) -> None:
         keep = []
+        transfer_start = float(self._transfer[0, 0]) if self._transfer.shape[0] else np.inf
         for event in self._pending_events:
-            if event.evidence_end_time_s > t_now:
+            # wait for the evidence window to pass, and for the transfer it falls in to be judged
+            if event.evidence_end_time_s > t_now or event.end_time_s >= transfer_start:
                 keep.append(event)
                 continue
             results.events.append(self._event_row(event))
@@ -501,6 +540,7 @@ class RobotMonitor:
         state.update(self._raw.save("raw/"))
         state["last_seq"] = np.array(self._last_seq)
         state["transfer"] = self._transfer.copy()
+        state["transfer_open"] = np.array(self._transfer_open)
         state["x_prior"] = self._x_prior.copy()
         state["std_prior"] = self._std_prior.copy()
         return state
@@ -531,7 +571,8 @@ class RobotMonitor:
         self._recent_collisions = _events_from_arrays("recent/", state)
         self._raw = _RawBuffer.restore(self.n, "raw/", state)
         self._last_seq = int(state["last_seq"])
-        self._transfer = np.asarray(state["transfer"], dtype=float).copy()
+        self._transfer = np.asarray(state["transfer"], dtype=float).reshape(-1, 3 + self.n).copy()
+        self._transfer_open = bool(state["transfer_open"])
         self._x_prior = np.asarray(state["x_prior"], dtype=float).copy()
         self._std_prior = np.asarray(state["std_prior"], dtype=float).copy()
 

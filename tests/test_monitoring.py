@@ -132,3 +132,20 @@ def test_missed_and_double_picks_are_found_per_transfer() -> None:
     assert by_fault["double_pick"]["carried_mass_kg"] == pytest.approx(0.5, abs=0.02)
     assert by_fault["missed_pick"]["carried_mass_kg"] == pytest.approx(0.0, abs=0.02)
     assert by_fault["wrong_work_piece"]["carried_mass_kg"] == pytest.approx(0.29, abs=0.01)
+
+
+def test_calibrated_thresholds_clear_the_healthy_residual_and_the_gaussian_bound(rng: np.random.Generator) -> None:
+    from shadow.detection.momentum_observer import alpha_for_false_alarm_rate
+    from shadow.monitoring import calibrated_thresholds
+
+    stream = delta_stream(rng, duration_s=0.1)
+    s = default_settings(stream.description)
+    residual = rng.normal(0.0, [0.1, 0.2, 0.3], size=(20000, 3))
+    residual[15000, 1] = 5.0  # one healthy outlier (the rigid model's blind spot)
+    thr = calibrated_thresholds(residual, s)
+    assert thr[1] == pytest.approx(1.25 * 5.0)
+    # elsewhere the Gaussian bound z sigma for the false-alarm target (scipy.stats.norm as the reference)
+    from scipy.stats import norm
+
+    z = norm.isf(alpha_for_false_alarm_rate(s.false_alarms_per_day / 24.0, s.sample_rate_hz) / 2.0)
+    assert thr[2] >= z * 0.3 * 0.95 and thr[0] >= z * 0.1 * 0.95

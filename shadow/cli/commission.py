@@ -34,6 +34,7 @@ from shadow.estimation.commissioning import (
     ConditionedRun,
     GainCalibration,
     Identification,
+    InsufficientDataError,
     baseline_from_identification,
     calibrate_gains,
     condition_run,
@@ -41,7 +42,7 @@ from shadow.estimation.commissioning import (
     identify_run,
     unseen_prior_std,
 )
-from shadow.ingest.wire import PlausibilityLimits, SampleBatch, decode_json
+from shadow.ingest.wire import PlausibilityLimits, PositionUnit, SampleBatch, decode_json
 from shadow.robots.description import (
     DEFAULT_SMOOTH_VELOCITY_M_S,
     DEFAULT_SMOOTH_VELOCITY_RAD_S,
@@ -351,6 +352,7 @@ def run(args: argparse.Namespace) -> int:
         nominal_friction=nominal_friction,
         nominal_work_piece_kg=getattr(description.tool, "work_piece_mass_kg", None),
     )
+    baseline = dataclasses.replace(baseline, collision_threshold=healthy_run_thresholds(description, baseline, rec))
     doc = baseline_document(description, rec, run_c, settings, ident, baseline, gains, args)
     try:
         args.output.parent.mkdir(parents=True, exist_ok=True)
@@ -358,8 +360,41 @@ def run(args: argparse.Namespace) -> int:
     except OSError as exc:
         raise ConfigurationError(f"{args.output}: cannot write the baseline: {exc.strerror or exc}") from exc
     print("\n".join(report_lines(description, rec, run_c, ident, gains, args)))
+    unit = "N m" if description.family == "delta" else "N"
+    thresholds = ", ".join(f"{i + 1}: {v:.3g} {unit}" for i, v in enumerate(baseline.collision_threshold))  # type: ignore[arg-type]
+    print(f"collision thresholds calibrated on this run: {thresholds}")
     print(f"baseline written to {args.output}")
     return 0
+
+
+def healthy_run_thresholds(description: RobotDescription, baseline: Baseline, rec: Recording) -> Array:
+    """Run the live monitor with the new baseline over the healthy run and calibrate its collision thresholds
+    on the observer residual it sees there (:func:`shadow.monitoring.calibrated_thresholds`)."""
+    from shadow.monitoring import RobotMonitor, calibrated_thresholds, default_settings  # the live monitor itself
+
+    rate = 1.0 / float(np.median(np.diff(rec.t)))
+    settings = default_settings(description, sample_rate_hz=rate)
+    monitor = RobotMonitor(f"commission/run/{rec.robot_id}", description, baseline, settings)
+    monitor.residual_log = []
+    unit = PositionUnit.RAD if description.family == "delta" else PositionUnit.M
+    batches = [
+        SampleBatch(
+            robot_id=rec.robot_id,
+            seq=k,
+            position_unit=unit,
+            effort_kind=MeasuredQuantity.EFFORT,
+            t=rec.t[s : s + 500],
+            q=rec.q[s : s + 500],
+            effort=rec.effort[s : s + 500],
+            gripping=rec.gripping[s : s + 500],
+        )
+        for k, s in enumerate(range(0, rec.t.shape[0], 500))
+    ]
+    monitor.process_many(batches)
+    residual = np.concatenate(monitor.residual_log) if monitor.residual_log else np.zeros((0, description.n_actuators))
+    if residual.shape[0] < 10 * settings.sample_rate_hz / settings.observer_gain_per_s:
+        raise InsufficientDataError("the run is too short to calibrate the collision thresholds")
+    return calibrated_thresholds(residual, settings)
 
 
 def baseline_document(

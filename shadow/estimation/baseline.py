@@ -63,6 +63,7 @@ class Baseline:
     tool_mass_kg : mass of the tool carried by the platform [kg], >= 0
     work_piece_mass_kg : mass of the nominal work piece when gripped [kg], >= 0
     payload_parameters : (p,) theta_p of tool (+ work piece) for multi-parameter payload models, or None
+    collision_threshold : (n,) momentum-observer thresholds calibrated on the healthy run [N m | N], or None
     """
 
     friction_parameters: Array
@@ -71,6 +72,7 @@ class Baseline:
     tool_mass_kg: float
     work_piece_mass_kg: float
     payload_parameters: Array | None = None
+    collision_threshold: Array | None = None
 
     def __post_init__(self) -> None:
         f = _vector({"friction_parameters": self.friction_parameters}, "friction_parameters")
@@ -94,6 +96,11 @@ class Baseline:
         object.__setattr__(self, "friction_parameters", f)
         object.__setattr__(self, "friction_covariance", cov.copy())
         object.__setattr__(self, "noise_std", noise)
+        if self.collision_threshold is not None:
+            thr = _vector({"collision_threshold": self.collision_threshold}, "collision_threshold", noise.shape[0])
+            if np.any(~(thr > 0)):
+                raise ConfigurationError(f"collision_threshold: must be > 0, got {thr}")
+            object.__setattr__(self, "collision_threshold", thr)
         if self.payload_parameters is not None:
             object.__setattr__(
                 self,
@@ -114,6 +121,7 @@ class Baseline:
             "tool_mass_kg": self.tool_mass_kg,
             "work_piece_mass_kg": self.work_piece_mass_kg,
             "payload_parameters": None if self.payload_parameters is None else self.payload_parameters.tolist(),
+            "collision_threshold": None if self.collision_threshold is None else self.collision_threshold.tolist(),
         }
 
     @classmethod
@@ -133,4 +141,5 @@ class Baseline:
             tool_mass_kg=_scalar(d, "tool_mass_kg"),
             work_piece_mass_kg=_scalar(d, "work_piece_mass_kg"),
             payload_parameters=None if payload is None else _vector(d, "payload_parameters"),
+            collision_threshold=None if d.get("collision_threshold") is None else _vector(d, "collision_threshold"),
         )
