@@ -16,7 +16,11 @@ analysis and the tests all run exactly the same code. Per batch of samples:
 5. payload faults (delta): the carried mass of every transfer (a stretch with the tool gripping), estimated from
    that transfer alone with the filter's tool mass and friction taken off, checked against the work piece the
    description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance);
-6. health per actuator and for the robot (:mod:`shadow.detection.health`).
+6. wear: every ``wear_window_s`` the window's mean Coulomb and viscous friction per actuator and its mean
+   drive temperature go to :class:`~shadow.detection.wear.WearMonitor` (temperature compensation with the
+   declared viscous coefficient about the first window's temperature, indicator against the baseline's
+   friction, Theil-Sen trend, forecast of the day the last level is crossed, level events);
+7. health per actuator and for the robot (:mod:`shadow.detection.health`), wear indicator included.
 
 Carried mass of a transfer (weighted least squares on one scalar, the work-piece column of the regressor):
 ``z_k = tau_meas_k - tau_known_k - Y_p,k m_tool - tau_f,k``, ``m = sum Y^T W z / sum Y^T W Y`` with
@@ -53,6 +57,14 @@ from shadow.detection.momentum_observer import (
     alpha_for_false_alarm_rate,
     residual_thresholds,
 )
+from shadow.detection.wear import (
+    FrictionBaseline,
+    TemperatureLaw,
+    TemperatureModel,
+    WearLevels,
+    WearMonitor,
+    wear_trend,
+)
 from shadow.errors import ShadowError
 from shadow.estimation.baseline import Baseline
 from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
@@ -79,6 +91,10 @@ class MonitorSettings:
     evidence_after_s: float = 1.0
     health_limits: HealthLimits = field(default_factory=HealthLimits)
     min_transfer_s: float = 0.1  # shorter gripping stretches are not judged
+    wear_window_s: float = 600.0  # friction is averaged over windows this long for the wear trend
+    wear_levels: WearLevels = field(default_factory=WearLevels)
+    wear_reference_speed: float = 1.0  # v_ref of the wear indicator [rad/s | m/s]
+    viscous_temperature_coefficient_per_k: float = 0.0  # declared k of exp(-k (T - T_ref)); 0: no compensation
     double_pick_ratio: float = 1.5  # carried / expected above this: two work pieces
     missed_pick_ratio: float = 0.5  # carried / expected below this: nothing carried
 
@@ -147,7 +163,7 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         noise_time_constant_s=60.0,
         n_temperatures=n,
     )
-    return MonitorSettings(tracker=tracker, sample_rate_hz=sample_rate_hz)
+    return MonitorSettings(tracker=tracker, sample_rate_hz=sample_rate_hz, wear_reference_speed=1.0 if delta else 0.05)
 
 
 def calibrated_thresholds(residual: Array, settings: MonitorSettings, *, margin: float = 1.25) -> Array:
@@ -218,6 +234,11 @@ class RobotMonitor:
         self._last_seq = 0
         self._transfer = np.zeros((0, 3 + self.n))  # open transfer per sample: t, Y^T W z, Y^T W Y, |Y_p|
         self._transfer_open = False
+        # wear window being filled: [window index, outputs, sum F_c (n), sum b (n), sum T (n), T samples (n)]
+        self._wear_acc = np.concatenate([[-1.0, 0.0], np.zeros(4 * self.n)])
+        self._wear: WearMonitor | None = None  # built at the first complete window (its temperature is T_ref)
+        self._wear_t_ref = np.nan
+        self._wear_trends: list[Any] = []
         self._x_prior = np.zeros(0)  # filter estimate before the current output (not yet pulled by it)
         self._std_prior = np.zeros(0)
 
@@ -312,6 +333,7 @@ class RobotMonitor:
             settled = self._x_prior.shape == out.x.shape and self._std_prior[0] <= self._settled_tool_std_kg()
             self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled)
         self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
+        self._wear_for(out, t_end, results)
         self._release_events(t_end, results)
         self._health_for(out, rms, t_end, results)
 
@@ -443,6 +465,80 @@ class RobotMonitor:
             }
         )
 
+    def _wear_for(self, out: TrackerOutput, t_end: float, results: StepResults) -> None:
+        """Add this output's friction to the wear window; close the window when the output is past it."""
+        n, k = self.n, self.tracker.friction_per_actuator
+        x_f = out.x[self.tracker.n_payload :].reshape(n, k)  # per actuator: Coulomb, viscous, offset(, Stribeck)
+        index = float(np.floor(t_end / self.settings.wear_window_s))
+        acc = self._wear_acc
+        if acc[0] >= 0 and index != acc[0] and acc[1] > 0:
+            self._close_wear_window(acc, results)
+            acc = np.concatenate([[-1.0, 0.0], np.zeros(4 * n)])
+        acc[0] = index
+        acc[1] += 1
+        acc[2 : 2 + n] += x_f[:, 0]
+        acc[2 + n : 2 + 2 * n] += x_f[:, 1]
+        temp = out.temperature_mean[:n] if out.temperature_mean.shape[0] >= n else np.full(n, np.nan)
+        seen = np.isfinite(temp)
+        acc[2 + 2 * n : 2 + 3 * n] += np.where(seen, temp, 0.0)
+        acc[2 + 3 * n : 2 + 4 * n] += seen
+        self._wear_acc = acc
+
+    def _build_wear(self) -> WearMonitor | None:
+        """The wear monitor against the baseline's friction at the first window's temperature (T_ref)."""
+        n = self.n
+        theta_f = self.baseline.friction_parameters.reshape(n, -1)
+        v_ref = np.full(n, self.settings.wear_reference_speed)
+        if np.any(theta_f[:, 0] + theta_f[:, 1] * v_ref <= 0.0):
+            return None
+        k_v = np.full(n, self.settings.viscous_temperature_coefficient_per_k)
+        base = FrictionBaseline(
+            theta_f[:, 0].copy(),
+            theta_f[:, 1].copy(),
+            v_ref,
+            TemperatureModel(TemperatureLaw.EXPONENTIAL, np.zeros(n), self._wear_t_ref),
+            TemperatureModel(TemperatureLaw.EXPONENTIAL, k_v, self._wear_t_ref),
+        )
+        return WearMonitor(base, self.settings.wear_levels)
+
+    def _close_wear_window(self, acc: Array, results: StepResults) -> None:
+        n = self.n
+        count = acc[1]
+        F_c = acc[2 : 2 + n] / count
+        b = acc[2 + n : 2 + 2 * n] / count
+        t_count = acc[2 + 3 * n : 2 + 4 * n]
+        T = np.where(t_count > 0, acc[2 + 2 * n : 2 + 3 * n] / np.maximum(t_count, 1), 0.0)
+        day = (acc[0] + 0.5) * self.settings.wear_window_s / 86400.0  # window centre [days since the epoch]
+        if self._wear is None:
+            self._wear_t_ref = float(np.mean(T))
+            self._wear = self._build_wear()
+            if self._wear is None:
+                return  # no baseline friction to compare with (commission the robot first)
+        events, self._wear_trends = self._wear.update(np.array([day]), F_c[None], b[None], T[None])
+        for e in events:
+            results.events.append(
+                {
+                    "kind": "wear",
+                    "start_s": e.day * 86400.0,
+                    "end_s": e.day * 86400.0,
+                    "severity": "high" if e.rank_after == len(self.settings.wear_levels.names) else "medium",
+                    "summary": (
+                        f"actuator {e.actuator + 1}: friction {'rose to' if e.rising else 'fell back from'} "
+                        f"'{e.level_after or e.level_before}' (indicator {e.indicator:.2f} of its baseline)"
+                    ),
+                    "figures": {
+                        "actuator": e.actuator + 1,
+                        "wear_indicator_ratio": e.indicator,
+                        "level_before": e.level_before,
+                        "level_after": e.level_after,
+                    },  # fmt: skip
+                    "evidence_start_s": None,
+                    "evidence_end_s": None,
+                    "evidence": None,
+                    "source_seq": self._last_seq,
+                }
+            )
+
     def _release_events(self, t_now: float, results: StepResults) -> None:
         keep = []
         transfer_start = float(self._transfer[0, 0]) if self._transfer.shape[0] else np.inf
@@ -499,8 +595,17 @@ class RobotMonitor:
 
     def _health_for(self, out: TrackerOutput, rms: Array, t_end: float, results: StepResults) -> None:
         limits = self.settings.health_limits
-        wear = np.full(self.n, np.nan)  # live wear trend: next step (offline analysis has it)
+        wear = self._wear.indicator[-1].copy() if self._wear is not None and self._wear.indicator.shape[0] else None
+        wear = np.full(self.n, np.nan) if wear is None else wear
         actuators = actuator_health(rms, self.baseline.noise_std, wear, np.zeros(self.n), limits)
+        day_now = t_end / 86400.0
+        for trend in self._wear_trends:  # forecast of the last level, in days from now
+            figures = actuators[trend.actuator].figures
+            figures["wear_slope_per_day"] = trend.slope_per_day
+            if np.isfinite(trend.crossing_day):
+                figures["days_to_wear_limit"] = trend.crossing_day - day_now
+                figures["days_to_wear_limit_earliest"] = trend.crossing_day_earliest - day_now
+                figures["days_to_wear_limit_latest"] = trend.crossing_day_latest - day_now
         horizon = t_end - 3600.0
         self._recent_collisions = [c for c in self._recent_collisions if c.end_time_s >= horizon]
         deviation = float("nan")
@@ -541,6 +646,12 @@ class RobotMonitor:
         state["last_seq"] = np.array(self._last_seq)
         state["transfer"] = self._transfer.copy()
         state["transfer_open"] = np.array(self._transfer_open)
+        state["wear/acc"] = self._wear_acc.copy()
+        state["wear/t_ref"] = np.array(self._wear_t_ref)
+        state["wear/days"] = np.zeros(0) if self._wear is None else self._wear.days.copy()
+        state["wear/indicator"] = np.zeros((0, self.n)) if self._wear is None else self._wear.indicator.copy()
+        state["wear/ranks"] = np.zeros(self.n, dtype=np.int64) if self._wear is None else self._wear.ranks.copy()
+        state["wear/built"] = np.array(self._wear is not None)
         state["x_prior"] = self._x_prior.copy()
         state["std_prior"] = self._std_prior.copy()
         return state
@@ -573,6 +684,20 @@ class RobotMonitor:
         self._last_seq = int(state["last_seq"])
         self._transfer = np.asarray(state["transfer"], dtype=float).reshape(-1, 3 + self.n).copy()
         self._transfer_open = bool(state["transfer_open"])
+        self._wear_acc = np.asarray(state["wear/acc"], dtype=float).copy()
+        self._wear_t_ref = float(state["wear/t_ref"])
+        self._wear, self._wear_trends = None, []
+        if bool(state["wear/built"]):
+            self._wear = self._build_wear()
+            if self._wear is not None:
+                self._wear.days = np.asarray(state["wear/days"], dtype=float).copy()
+                self._wear.indicator = np.asarray(state["wear/indicator"], dtype=float).reshape(-1, self.n).copy()
+                self._wear.ranks = np.asarray(state["wear/ranks"], dtype=np.int64).copy()
+                if self._wear.days.shape[0] >= 3:
+                    tail = slice(-self._wear.trend_windows, None)
+                    self._wear_trends = wear_trend(
+                        self._wear.days[tail], self._wear.indicator[tail], limit=self._wear.limit
+                    )
         self._x_prior = np.asarray(state["x_prior"], dtype=float).copy()
         self._std_prior = np.asarray(state["std_prior"], dtype=float).copy()
 

@@ -60,11 +60,13 @@ def delta_stream(
     impact_duration_s: float = 0.03,
     noise_rated_fraction: float = 0.005,
     transfer_masses_kg: dict[int, float] | None = None,
+    coulomb_ramp: tuple[int, float] | None = None,
 ) -> SyntheticStream:
     """Sum-of-sines joint motion around home, tool cycling every second, optional half-sine impact along +x.
 
     The tool grips for 1 s every 2 s (transfer k from 2 k to 2 k + 1 s) and carries the described work piece,
-    or ``transfer_masses_kg[k]`` for the transfers listed there.
+    or ``transfer_masses_kg[k]`` for the transfers listed there. ``coulomb_ramp = (i, f)`` raises actuator i's
+    Coulomb friction linearly from its value to f times it over the stream (wear).
     """
     d = load_description(EXAMPLE_DELTA)
     m = build_model(d)
@@ -84,7 +86,11 @@ def delta_stream(
     tau1 = m.inverse_dynamics(q, qd, qdd, np.ones(1))
     tau = tau0 + (tau1 - tau0) * theta[:, None]  # ID is affine in the payload mass
     theta_f = np.tile([1.5, 0.3, 0.1], 3)
-    tau = tau + friction_effort(qd, theta_f, smooth_velocity=d.friction.smooth_velocity if d.friction else 0.02)
+    smooth = d.friction.smooth_velocity if d.friction else 0.02
+    tau = tau + friction_effort(qd, theta_f, smooth_velocity=smooth)
+    if coulomb_ramp is not None:  # the extra Coulomb friction of a wearing actuator: (f - 1) F_c t / T tanh(qd / v_s)
+        i, factor = coulomb_ramp
+        tau[:, i] += (factor - 1.0) * theta_f[3 * i] * (t_rel / t_rel[-1]) * np.tanh(qd[:, i] / smooth)
     force = np.zeros((t_rel.shape[0], 3))
     if impact_at_s is not None:
         k = (t_rel >= impact_at_s) & (t_rel < impact_at_s + impact_duration_s)

@@ -149,3 +149,22 @@ def test_calibrated_thresholds_clear_the_healthy_residual_and_the_gaussian_bound
 
     z = norm.isf(alpha_for_false_alarm_rate(s.false_alarms_per_day / 24.0, s.sample_rate_hz) / 2.0)
     assert thr[2] >= z * 0.3 * 0.95 and thr[0] >= z * 0.1 * 0.95
+
+
+def test_rising_friction_raises_wear_levels_on_its_own_actuator_only() -> None:
+    import dataclasses
+
+    from shadow.estimation.baseline import Baseline
+
+    stream = delta_stream(np.random.default_rng(31), duration_s=40.0, coulomb_ramp=(1, 1.8))
+    n_f = stream.friction.shape[0]
+    baseline = Baseline(stream.friction, np.diag(np.full(n_f, 0.05**2)), np.full(3, 0.36), 0.35, 0.25)
+    s = dataclasses.replace(default_settings(stream.description), wear_window_s=2.0)
+    res = run(RobotMonitor(ROBOT, stream.description, baseline, s), stream.batches("p4", 100))
+    wear = [e for e in res.events if e["kind"] == "wear"]
+    assert wear and {e["figures"]["actuator"] for e in wear} == {2}
+    assert [e["figures"]["level_after"] for e in wear] == ["elevated", "service due"]
+    last = {h["scope"]: h for h in res.health if h["time_s"] == res.health[-1]["time_s"]}
+    assert last["actuator:2"]["figures"]["wear_indicator_ratio"] > 1.3
+    assert 0.9 < last["actuator:1"]["figures"]["wear_indicator_ratio"] < 1.1
+    assert last["actuator:2"]["figures"]["wear_slope_per_day"] > 0
