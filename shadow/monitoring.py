@@ -428,6 +428,9 @@ class RobotMonitor:
         m = s_yz / s_yy  # weighted least squares of the carried mass
         std = 1.0 / np.sqrt(s_yy)
         ratio = m / expected if expected > 0 else np.inf
+        results.estimates.append(  # every transfer's own mass, beside the filter's running estimates
+            {"time_s": end, "parameter": "transfer_mass", "value": float(m), "std": float(std), "identifiable": True}
+        )
         if ratio < s.missed_pick_ratio:
             fault, words = "missed_pick", "the tool closed but carried nothing"
         elif ratio > s.double_pick_ratio:
@@ -538,6 +541,14 @@ class RobotMonitor:
                     "source_seq": self._last_seq,
                 }
             )
+
+    def flush_events(self) -> StepResults:
+        """At the end of a stream: the collisions still waiting for the end of their evidence window."""
+        results = StepResults(self.robot_id)
+        transfer, self._transfer = self._transfer, np.zeros((0, 3 + self.n))  # no transfer will be judged now
+        self._release_events(np.inf, results)
+        self._transfer = transfer
+        return results
 
     def _release_events(self, t_now: float, results: StepResults) -> None:
         keep = []

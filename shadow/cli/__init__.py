@@ -25,7 +25,7 @@ Handler = Callable[[argparse.Namespace], int]
 
 def build_parser() -> argparse.ArgumentParser:
     """The full argument parser, every sub-command registered."""
-    from shadow.cli import commission, demo, robot, serve
+    from shadow.cli import analyze, commission, demo, report, robot, serve
 
     parser = argparse.ArgumentParser(
         prog="shadow",
@@ -38,7 +38,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("-v", "--verbose", action="count", default=0, help="more log output (repeatable)")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
     commands.required = True
-    for module in (demo, serve, robot, commission):
+    for module in (demo, serve, robot, commission, analyze, report):
         module.register(commands)
     return parser
 

@@ -14,7 +14,7 @@ import pytest
 from shadow.cli import build_parser, main
 from tests.servers import free_loopback_port
 
-COMMANDS = ("demo", "serve", "robot", "commission")
+COMMANDS = ("demo", "serve", "robot", "commission", "analyze", "report")
 
 
 def run_cli(*args: str, timeout_s: float = 60) -> subprocess.CompletedProcess[str]:

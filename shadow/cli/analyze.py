@@ -1,0 +1,258 @@
+"""``shadow analyze``: run the live monitor over a recorded run, much faster than real time.
+
+``shadow analyze DESCRIPTION RECORDING [--baseline B.json] [--sample-rate-hz R] [--robot ID] [--events-json OUT]``
+
+RECORDING is JSON lines of wire messages or a CSV (layout in docs/analysis.md). The monitor is built exactly
+as ``shadow serve`` builds it (description, baseline or the description's nominal values, default settings at
+the stream's rate) and fed the recording in blocks of messages, so it finds what the live service would have
+found. Lines that cannot be used are skipped and listed (``--strict`` stops at the first one instead). At
+the end it prints the samples, duration and speed, every event found (time, kind, size, platform force) and
+the estimates at the end with their standard deviations. Advisory only: nothing is sent to a controller.
+"""
+
+from __future__ import annotations
+
+import argparse
+import base64
+import datetime as dt
+import json
+import sys
+import time
+from pathlib import Path
+from typing import Any, TextIO
+
+import numpy as np
+
+from shadow.analysis import DEFAULT_BLOCK_MESSAGES, Analysis, analyse
+from shadow.analysis.recording import Recording, read_recording
+from shadow.cli.serve import load_baseline
+from shadow.errors import ConfigurationError
+from shadow.monitoring import RobotMonitor, default_settings
+from shadow.robots.description import RobotDescription, load_description
+
+PROGRESS_PERIOD_S = 0.25  # the bar is redrawn at most four times a second
+BAR_WIDTH = 30
+
+
+def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = commands.add_parser(
+        "analyze",
+        help="run the monitor over a recorded run and list what it found",
+        description=__doc__,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    add_common_arguments(parser)
+    parser.add_argument("--events-json", type=Path, metavar="OUT", help="write the events found to OUT (JSON)")
+    parser.set_defaults(handler=run)
+
+
+def add_common_arguments(parser: argparse.ArgumentParser) -> None:
+    """Arguments shared by ``shadow analyze`` and ``shadow report``."""
+    parser.add_argument("description", type=Path, metavar="DESCRIPTION", help="robot description (TOML, schema 1)")
+    parser.add_argument("recording", type=Path, metavar="RECORDING", help="JSON lines of wire messages, or CSV")
+    parser.add_argument("--baseline", type=Path, metavar="B.json", help="commissioning baseline (shadow commission)")
+    parser.add_argument(
+        "--sample-rate-hz",
+        type=float,
+        default=None,
+        metavar="R",
+        help="nominal stream rate for the false-alarm bound (default: the recording's median rate)",
+    )
+    parser.add_argument("--robot", metavar="ID", help="robot id to analyse (default: the description's name)")
+    parser.add_argument("--strict", action="store_true", help="stop at the first unusable line instead of skipping")
+    parser.add_argument(
+        "--progress", action="store_true", help="show the progress bar even when stderr is not a terminal"
+    )
+    parser.add_argument(
+        "--block-messages",
+        type=int,
+        default=DEFAULT_BLOCK_MESSAGES,
+        metavar="K",
+        help=f"messages per monitor call (default {DEFAULT_BLOCK_MESSAGES})",
+    )
+
+
+class ProgressBar:
+    """A one-line bar on a stream: share done, samples, rate and time left; redrawn at most every period_s."""
+
+    def __init__(self, stream: TextIO, *, period_s: float = PROGRESS_PERIOD_S) -> None:
+        self.stream = stream
+        self.period_s = period_s
+        self._last_draw = -float("inf")
+        self.drawn = 0
+
+    def __call__(self, done: int, total: int, elapsed_s: float) -> None:
+        now = time.monotonic()
+        if done < total and now - self._last_draw < self.period_s:
+            return
+        self._last_draw = now
+        self.drawn += 1
+        self.stream.write("\r" + progress_line(done, total, elapsed_s))
+        if done >= total:
+            self.stream.write("\n")
+        self.stream.flush()
+
+
+def progress_line(done: int, total: int, elapsed_s: float) -> str:
+    """``[#####.....]  45 %  12345/27000 samples  6.7k samples/s  0:02 left``."""
+    share = done / total if total else 1.0
+    filled = int(round(BAR_WIDTH * share))
+    rate = done / elapsed_s if elapsed_s > 0 else 0.0
+    left = (total - done) / rate if rate > 0 else float("nan")
+    left_text = "--:--" if not np.isfinite(left) else f"{int(left // 60)}:{int(left % 60):02d}"
+    return (
+        f"[{'#' * filled}{'.' * (BAR_WIDTH - filled)}] {100 * share:3.0f} %  {done}/{total} samples  "
+        f"{_si(rate)} samples/s  {left_text} left"
+    )
+
+
+def _si(x: float) -> str:
+    if x >= 1e6:
+        return f"{x / 1e6:.1f}M"
+    if x >= 1e3:
+        return f"{x / 1e3:.1f}k"
+    return f"{x:.0f}"
+
+
+def iso(t_s: float) -> str:
+    """ISO 8601 UTC with milliseconds."""
+    return dt.datetime.fromtimestamp(t_s, tz=dt.UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
+
+
+def median_rate_hz(recording: Recording) -> float:
+    """The stream's rate from the median step between samples (gaps between windows do not count)."""
+    steps = np.concatenate([np.diff(b.t) for b in recording.batches if b.n_samples > 1] or [np.zeros(0)])
+    if steps.size == 0:
+        raise ConfigurationError("--sample-rate-hz: the recording has no two samples in one message; give the rate")
+    return float(1.0 / np.median(steps))
+
+
+def build_monitor(
+    description: RobotDescription, recording: Recording, baseline_path: Path | None, sample_rate_hz: float | None
+) -> RobotMonitor:
+    """The monitor exactly as the live service builds it."""
+    rate = median_rate_hz(recording) if sample_rate_hz is None else sample_rate_hz
+    if not rate > 0:
+        raise ConfigurationError(f"--sample-rate-hz: must be > 0, got {rate}")
+    settings = default_settings(description, sample_rate_hz=rate)
+    return RobotMonitor(recording.robot_id, description, load_baseline(baseline_path), settings)
+
+
+def run_analysis(args: argparse.Namespace) -> tuple[RobotDescription, RobotMonitor, Analysis]:
+    """Read, build and analyse, with the progress bar if wanted (shared with ``shadow report``)."""
+    if args.block_messages < 1:
+        raise ConfigurationError(f"--block-messages: must be >= 1, got {args.block_messages}")
+    description = load_description(args.description)
+    recording = read_recording(args.recording, description, robot_id=args.robot, strict=args.strict)
+    for skip in recording.skipped[:20]:
+        print(f"shadow {args.command}: skipped {args.recording}: {skip}", file=sys.stderr)
+    if len(recording.skipped) > 20:
+        print(f"shadow {args.command}: ... {len(recording.skipped) - 20} more lines skipped", file=sys.stderr)
+    monitor = build_monitor(description, recording, args.baseline, args.sample_rate_hz)
+    show = args.progress or sys.stderr.isatty()
+    bar = ProgressBar(sys.stderr) if show else None
+    return description, monitor, analyse(recording, monitor, block_messages=args.block_messages, progress=bar)
+
+
+def force_of(event: dict[str, Any]) -> tuple[str, list[float]]:
+    """(key, vector) of the event's estimated platform force [N] (delta) or wrench [N, N m] (hexapod)."""
+    figures = event.get("figures", {})
+    for key in ("platform_force_n", "platform_wrench_n_nm"):
+        if key in figures:
+            return key, [float(x) for x in figures[key]]
+    return "", []
+
+
+def summary_lines(description: RobotDescription, analysis: Analysis) -> list[str]:
+    """The readable summary printed at the end of ``shadow analyze``."""
+    rec = analysis.recording
+    delta = description.family == "delta"
+    lines = [
+        f"{rec.robot_id} ({description.family}, {description.name}): {len(rec.batches)} messages, "
+        f"{analysis.n_samples} samples over {rec.duration_s:.3f} s from {iso(rec.start_s)}",
+        f"analysed in {analysis.elapsed_s:.2f} s: {analysis.samples_per_s:,.0f} samples/s "
+        f"({rec.duration_s / analysis.elapsed_s if analysis.elapsed_s > 0 else float('inf'):.1f} x real time)",
+    ]
+    if rec.skipped:
+        lines.append(f"skipped lines: {len(rec.skipped)} (listed on stderr)")
+    if rec.other_robots:
+        lines.append(f"other robots in the file, not analysed: {', '.join(rec.other_robots)}")
+    gaps = analysis.results.unmonitored
+    finals = analysis.final_estimates()
+    tail_s = rec.end_s - finals[-1].time_s if finals else rec.duration_s
+    if tail_s > 0:
+        lines.append(f"not examined: the last {tail_s:.3f} s (the monitor works in whole output periods)")
+    if gaps:
+        lines.append(f"not monitored: {len(gaps)} stretches, {sum(g['end_s'] - g['start_s'] for g in gaps):.3f} s")
+    events = analysis.events
+    lines.append(f"events: {len(events)}")
+    for e in events:
+        key, f = force_of(e)
+        size = float(np.linalg.norm(f[:3])) if f else float("nan")
+        vec = ", ".join(f"{x:.1f}" for x in f)
+        force = f"platform force {size:.1f} N ({vec})" if delta else f"platform wrench ({vec}) N, N m"
+        lines.append(
+            f"  {iso(e['start_s'])}  +{e['start_s'] - rec.start_s:8.3f} s  {e['kind']:<10} "
+            f"{1000 * (e['end_s'] - e['start_s']):5.0f} ms  {e['severity']:<6}  {force}"
+        )
+        lines.append(f"      {e['summary']}")
+    if finals:
+        lines.append(f"estimates at the end ({iso(finals[-1].time_s)}):")
+        for est in finals:
+            flag = "" if est.identifiable else "  (not identifiable from this run)"
+            lines.append(f"  {est.parameter:<18} {est.value:>11.5g} +- {est.std:.3g}{flag}")
+    health = [h for h in analysis.results.health if h["scope"] == "robot"]
+    if health:
+        last = health[-1]
+        lines.append(f"health at the end: {last['state']}")
+        lines += [f"  - {r}" for r in last["reasons"]]
+    lines.append("advisory only: nothing was sent to any controller")
+    return lines
+
+
+def events_document(analysis: Analysis) -> dict[str, Any]:
+    """The events as JSON: times also as ISO 8601, evidence as base64 of the wire binary encoding."""
+    rec = analysis.recording
+    out = []
+    for e in analysis.events:
+        row = {k: v for k, v in e.items() if k != "evidence"}
+        row["start_utc"] = iso(e["start_s"])
+        row["end_utc"] = iso(e["end_s"])
+        blob = e.get("evidence")
+        row["evidence_wire_binary_base64"] = None if blob is None else base64.b64encode(blob).decode("ascii")
+        out.append(row)
+    return {
+        "robot": rec.robot_id,
+        "recording": str(rec.path),
+        "samples": analysis.n_samples,
+        "start_utc": iso(rec.start_s),
+        "end_utc": iso(rec.end_s),
+        "skipped_lines": [{"line": s.line, "reason": s.reason} for s in rec.skipped],
+        "events": out,
+    }
+
+
+def _json_safe(value: Any) -> Any:
+    """JSON has no NaN or infinity: None in their place, recursively."""
+    if isinstance(value, float):
+        return value if np.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    return value
+
+
+def run(args: argparse.Namespace) -> int:
+    description, _, analysis = run_analysis(args)
+    if args.events_json is not None:
+        try:
+            args.events_json.parent.mkdir(parents=True, exist_ok=True)
+            text = json.dumps(_json_safe(events_document(analysis)), indent=1, allow_nan=False)
+            args.events_json.write_text(text + "\n", encoding="utf-8")
+        except (OSError, ValueError) as exc:
+            raise ConfigurationError(f"{args.events_json}: cannot write the events: {exc}") from exc
+    print("\n".join(summary_lines(description, analysis)))
+    if args.events_json is not None:
+        print(f"events written to {args.events_json}")
+    return 0
