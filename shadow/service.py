@@ -9,9 +9,10 @@ Only then are the step's messages acknowledged to the broker, in arrival order. 
 
 * a crash loses nothing accepted: unacknowledged messages come again and the checkpoint says where the
   results stopped, so they are neither lost nor doubled;
-* a database outage stops acknowledgements; the broker then holds the robot's messages (its in-flight
-  window and queue are the bound) and the service writes the results it kept in memory once the
-  database is back. The outage is counted in :class:`ServiceStatus`.
+* a database outage stops acknowledgements; the pipeline holds at most ``max_held_messages`` of a
+  robot's messages, then stops taking more, the full inbox holds the network thread back and the
+  broker keeps the rest (its queue is the bound); the service writes the results it kept in memory
+  once the database is back. The outage is counted in :class:`ServiceStatus`.
 """
 
 from __future__ import annotations
@@ -118,6 +119,7 @@ class RobotPipeline:
         limits: PlausibilityLimits | None = None,
         keep_raw: bool = True,
         max_messages_per_step: int = 50,
+        max_held_messages: int = 1000,
         reorder_window: int = 4,
     ) -> None:
         self.address = address
@@ -131,6 +133,7 @@ class RobotPipeline:
         self.limits = limits
         self.keep_raw = keep_raw
         self.max_messages_per_step = max_messages_per_step
+        self.max_held_messages = max_held_messages
         self.status = RobotStatus(self.robot_id)
         self.sequence = SequenceTracker(reorder_window=reorder_window)
         self._unwritten: StepResults | None = None
@@ -150,7 +153,10 @@ class RobotPipeline:
     def step(self) -> int:
         """Handle what is in the inbox (up to a cap); returns how many messages were taken."""
         taken: list[ReceivedMessage] = []
-        while len(taken) < self.max_messages_per_step:
+        room = self.max_messages_per_step
+        if self._unwritten is not None:  # the store is down: hold no more than the bound in memory
+            room = min(room, self.max_held_messages - len(self._unacknowledged))
+        while len(taken) < room:
             try:
                 taken.append(self.inbox.get_nowait())
             except queue.Empty:

@@ -14,6 +14,7 @@ import contextlib
 import os
 import pwd
 import shutil
+import signal
 import socket
 import subprocess
 import tempfile
@@ -68,16 +69,26 @@ class Broker:
     config_path: Path
 
 
-def start_mosquitto(workdir: Path, port: int) -> Broker:
-    """Start mosquitto with a generated configuration; logs go to ``workdir/mosquitto.log``."""
+def start_mosquitto(workdir: Path, port: int, *, persistence: bool = False) -> Broker:
+    """Start mosquitto with a generated configuration; logs go to ``workdir/mosquitto.log``.
+
+    With ``persistence`` the broker keeps its sessions and queued messages in ``workdir`` and saves
+    them after every change (``autosave_on_changes`` with an interval of 1), so a broker killed with
+    SIGKILL and started again on the same configuration resumes from its last change.
+    """
     exe = find_executable("mosquitto", [Path("/usr/sbin")])
     config = workdir / "mosquitto.conf"
+    if persistence:
+        stored = ["persistence true", f"persistence_location {workdir}/", "autosave_on_changes true",
+                  "autosave_interval 1"]  # fmt: skip
+    else:
+        stored = ["persistence false"]
     config.write_text(
         "\n".join(
             [
                 f"listener {port} 127.0.0.1",
                 "allow_anonymous true",
-                "persistence false",
+                *stored,
                 "log_dest stdout",
                 "max_queued_messages 100000",
                 # running as root, mosquitto would otherwise switch to its own user
@@ -86,10 +97,58 @@ def start_mosquitto(workdir: Path, port: int) -> Broker:
             ]
         )
     )
-    log = open(workdir / "mosquitto.log", "ab")  # noqa: SIM115 - closed with the process
+    return _run_mosquitto(exe, config, port)
+
+
+def _run_mosquitto(exe: str, config: Path, port: int) -> Broker:
+    log = open(config.parent / "mosquitto.log", "ab")  # noqa: SIM115 - closed with the process
     process = subprocess.Popen([exe, "-c", str(config)], stdout=log, stderr=subprocess.STDOUT)
     wait_for_port(port, timeout_s=10, process=process)
     return Broker("127.0.0.1", port, process, config)
+
+
+class RestartableBroker:
+    """A persistent mosquitto that a test can kill (SIGKILL) and start again on the same port and store."""
+
+    def __init__(self, workdir: Path) -> None:
+        self.workdir = workdir
+        self.port = free_loopback_port()
+        self.host = "127.0.0.1"
+        self.current: Broker | None = start_mosquitto(workdir, self.port, persistence=True)
+
+    def kill(self) -> None:
+        """SIGKILL: no clean shutdown, no final save of the persistence file."""
+        if self.current is not None:
+            self.current.process.send_signal(signal.SIGKILL)
+            self.current.process.wait(timeout=10)
+            self.current = None
+
+    def restart(self) -> None:
+        """Start again on the same port and configuration (so from the same persistence file)."""
+        if self.current is not None:
+            raise RuntimeError("the broker is still running")
+        exe = find_executable("mosquitto", [Path("/usr/sbin")])
+        self.current = _run_mosquitto(exe, self.workdir / "mosquitto.conf", self.port)
+
+    def stop(self) -> None:
+        if self.current is not None:
+            self.current.process.terminate()
+            try:
+                self.current.process.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                self.current.process.kill()
+            self.current = None
+
+
+@pytest.fixture
+def restartable_broker() -> Iterator[RestartableBroker]:
+    """A mosquitto of its own, with persistence on, for one test that kills and restarts it."""
+    with tempfile.TemporaryDirectory(prefix="shadow-mosquitto-p-") as tmp:
+        broker = RestartableBroker(Path(tmp))
+        try:
+            yield broker
+        finally:
+            broker.stop()
 
 
 @pytest.fixture(scope="session")
@@ -115,6 +174,27 @@ class PostgresServer:
     port: int
     user: str
     data_dir: Path
+    pg_ctl: str = "pg_ctl"
+    run_as: str | None = None  # the unprivileged account the server runs as, when the tests run as root
+    start_options: str = ""
+    log_path: Path | None = None
+
+    def stop(self, mode: str = "fast") -> None:
+        """Shut the server down (``pg_ctl -m fast``: open connections are cut); data_dir and port stay."""
+        subprocess.run(_as_user(self.run_as, [self.pg_ctl, "-D", str(self.data_dir), "-m", mode, "-w", "stop"]),
+                       check=True, capture_output=True)  # fmt: skip
+
+    def start(self) -> None:
+        """Start the server again on the same data directory and port."""
+        log = ["-l", str(self.log_path)] if self.log_path is not None else []
+        subprocess.run(
+            _as_user(
+                self.run_as, [self.pg_ctl, "-D", str(self.data_dir), "-o", self.start_options, *log, "-w", "start"]
+            ),
+            check=True,
+            capture_output=True,
+        )
+        wait_for_port(self.port, timeout_s=20)
 
     def url(self, database: str = "postgres", driver: str = "psycopg") -> str:
         """SQLAlchemy URL of a database on this server."""
@@ -161,7 +241,7 @@ def postgres_server() -> Iterator[PostgresServer]:
             capture_output=True,
         )
         wait_for_port(port, timeout_s=20)
-        yield PostgresServer("127.0.0.1", port, db_user, data_dir)
+        yield PostgresServer("127.0.0.1", port, db_user, data_dir, pg_ctl, run_as, options, tmp / "server.log")
     finally:
         if data_dir.exists():
             subprocess.run(

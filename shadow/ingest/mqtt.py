@@ -16,10 +16,18 @@ this produces are dropped downstream by sequence number.
 Acknowledgements go out in the order the messages arrived (MQTT 3.1.1 section 4.6 requires PUBACKs in
 receive order), so the pipeline must acknowledge in that order: :meth:`acknowledge` checks it.
 
-Back-pressure: the broker sends at most its in-flight window (mosquitto ``max_inflight_messages``,
-default 20; MQTT 5 ``Receive Maximum``) of unacknowledged messages to one client, so with an inbox at
-least that large the inbox cannot overflow; if it does anyway (misconfigured window), the message is
-counted in ``overflowed`` and not acknowledged, so the broker delivers it again after a reconnect.
+Back-pressure: the client asks for an in-flight window (MQTT 5 ``Receive Maximum``; mosquitto's
+``max_inflight_messages`` for 3.1.1), but a broker may send more: mosquitto 2.0.11 was measured with
+several hundred unacknowledged deliveries outstanding once PUBACKs flow. So the window is not relied on:
+when the inbox is full, the network thread waits for room (TCP flow control then holds the broker back)
+instead of dropping the message. A dropped, unacknowledged message would occupy an in-flight slot until
+the next reconnect while later ones went on, so the robot's stream would show a gap and the redelivered
+message would come too late. The time the thread waited is counted in ``inbox_full_waits``.
+
+Acknowledgements belong to a connection: packet ids restart per connection and a broker resends a
+session's unacknowledged messages with their old ids, so a message taken from the inbox after a
+reconnect must not acknowledge (or be confused with) the resent copy. Each message carries the number
+of the connection it came on, and :meth:`acknowledge` ignores messages of an earlier one.
 """
 
 from __future__ import annotations
@@ -43,6 +51,7 @@ from shadow.errors import ConfigurationError, ShadowError
 
 log = logging.getLogger(__name__)
 
+INBOX_WAIT_STEP_S = 0.2  # how often a network thread waiting for inbox room checks for a stop
 MAX_READABLE_CLIENT_ID = 64  # mosquitto accepts up to 65535 bytes; keep ids readable in broker logs
 
 
@@ -112,6 +121,7 @@ class ReceivedMessage:
     qos: int
     duplicate: bool  # the broker's DUP flag: possibly delivered before
     received_at_s: float  # time.time() on arrival
+    connection: int = 0  # number of the connection it came on (see RobotSubscription.acknowledge)
 
 
 @dataclass
@@ -120,7 +130,8 @@ class SubscriptionCounters:
 
     received: int = 0
     acknowledged: int = 0
-    overflowed: int = 0
+    overflowed: int = 0  # messages dropped unacknowledged because the inbox stayed full while stopping
+    inbox_full_waits: int = 0  # times the network thread waited for room in the inbox
     connects: int = 0
     disconnects: int = 0
     last_connect_rc: str = ""
@@ -140,9 +151,13 @@ class RobotSubscription:
         settings: MqttSettings,
         *,
         inbox_size: int = 1000,
+        receive_maximum: int = 20,
     ) -> None:
         if inbox_size < 20:
             raise ConfigurationError(f"inbox_size: must be >= the broker's in-flight window (20), got {inbox_size}")
+        if not 0 < receive_maximum <= min(inbox_size, 65535):
+            raise ConfigurationError(f"receive_maximum: must be 1..min(inbox_size, 65535), got {receive_maximum}")
+        self.receive_maximum = receive_maximum
         self.robot_id = robot_id
         self.topic = topic
         self.settings = settings
@@ -152,6 +167,7 @@ class RobotSubscription:
         self.connected = threading.Event()
         self._pending_acks: deque[int] = deque()  # mids in arrival order, not yet acknowledged
         self._lock = threading.Lock()
+        self._connection = 0  # incremented on every successful connect
         self._stopping = False
         self._client = self._build_client()
 
@@ -200,6 +216,7 @@ class RobotSubscription:
         with self._lock:
             # unacknowledged messages of the old connection will be delivered again by the broker
             self._pending_acks.clear()
+            self._connection += 1
         result, _ = client.subscribe(self.topic, qos=1)
         if result != mqtt.MQTT_ERR_SUCCESS:
             log.error("robot %s: subscribe to %s failed: %s", self.robot_id, self.topic, mqtt.error_string(result))
@@ -216,17 +233,26 @@ class RobotSubscription:
         log.warning("robot %s: disconnected from broker (%s); paho reconnects with back-off", self.robot_id, reason)
 
     def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
-        received = ReceivedMessage(msg.topic, bytes(msg.payload), msg.mid, msg.qos, bool(msg.dup), time.time())
         with self._lock:
-            try:
-                self.inbox.put_nowait(received)
-            except queue.Full:
-                # not acknowledged: the broker redelivers it after the next reconnect
-                self.counters.overflowed += 1
-                return
-            self.counters.received += 1
-            if msg.qos > 0:
+            received = ReceivedMessage(
+                msg.topic, bytes(msg.payload), msg.mid, msg.qos, bool(msg.dup), time.time(), self._connection
+            )
+            if msg.qos > 0:  # registered before it can be taken from the inbox, so its ack finds it
                 self._pending_acks.append(msg.mid)
+            self.counters.received += 1
+        waited = False
+        while True:
+            try:
+                self.inbox.put(received, timeout=INBOX_WAIT_STEP_S)
+                return
+            except queue.Full:
+                if self._stopping:
+                    # not acknowledged: the broker sends it again on the session's next connection
+                    self.counters.overflowed += 1
+                    return
+                if not waited:
+                    waited = True
+                    self.counters.inbox_full_waits += 1
 
     # --- pipeline side ----------------------------------------------------------------------
     def start(self, *, wait_s: float | None = 10.0) -> None:
@@ -236,6 +262,7 @@ class RobotSubscription:
         if s.protocol == "5":
             props = Properties(PacketTypes.CONNECT)
             props.SessionExpiryInterval = s.session_expiry_s
+            props.ReceiveMaximum = self.receive_maximum
             rc = self._client.connect_async(
                 s.host, s.port, keepalive=s.keepalive_s, clean_start=False, properties=props
             )
@@ -256,7 +283,7 @@ class RobotSubscription:
         if message.qos == 0:
             return
         with self._lock:
-            if not self._pending_acks:
+            if message.connection != self._connection or not self._pending_acks:
                 return  # the connection it came on is gone; the broker will send it again
             if self._pending_acks[0] != message.mid:
                 if message.mid not in self._pending_acks:
