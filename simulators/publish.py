@@ -103,7 +103,8 @@ class BatchPublisher:
                     raise PublishError(f"{self.topic}: broker acknowledged nothing for {timeout_s} s")
             self._unacked += 1
         info = self._client.publish(self.topic, payload, qos=1)
-        if info.rc != mqtt.MQTT_ERR_SUCCESS:
+        # NO_CONN: paho keeps a QoS 1 message while disconnected and sends it on reconnection (on_publish follows)
+        if info.rc not in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_NO_CONN):
             with self._cond:
                 self._unacked -= 1
             raise PublishError(f"{self.topic}: publish failed: {mqtt.error_string(info.rc)}")
