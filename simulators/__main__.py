@@ -70,7 +70,7 @@ def live(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGINT, on_signal)
     feed = build_feed(args, realtime_start=True)
     address = RobotAddress(args.site, args.cell, args.robot)
-    settings = MqttSettings(host=args.host, port=args.port)
+    settings = MqttSettings(host=args.host, port=args.port, protocol=args.protocol)
     until = None if args.duration is None else time.time() + args.duration
     with BatchPublisher(address, settings, layout=TopicLayout(args.prefix), encoding=args.encoding) as pub:
         for batch in pace(feed.batches(time.time(), stop), realtime=not args.fast, until_s=until):
@@ -115,6 +115,7 @@ def main(argv: list[str] | None = None) -> int:
             p.add_argument("--host", default="127.0.0.1")
             p.add_argument("--port", type=int, default=1883)
             p.add_argument("--prefix", default="shadow", help="topic prefix")
+            p.add_argument("--protocol", choices=("5", "3.1.1"), default="5", help="MQTT protocol version")
             p.add_argument("--site", default="demo-site")
             p.add_argument("--cell", default="cell-1")
             p.add_argument("--encoding", choices=("binary", "json"), default="binary")

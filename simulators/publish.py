@@ -58,7 +58,8 @@ class BatchPublisher:
         self._cond = threading.Condition()
         self._connected = threading.Event()
         cid = client_id or f"shadow-sim-{address.site}-{address.cell}-{address.robot}"
-        self._client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=cid, protocol=mqtt.MQTTv5)
+        protocol = mqtt.MQTTv5 if settings.protocol == "5" else mqtt.MQTTv311
+        self._client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=cid, protocol=protocol)
         if settings.username is not None:
             self._client.username_pw_set(settings.username, settings.password)
         if settings.tls_ca_file is not None:

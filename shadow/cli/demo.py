@@ -137,12 +137,13 @@ def commission(robot: DemoRobot, workdir: Path, duration_s: float) -> Path:
     return baseline
 
 
-def write_config(workdir: Path, broker_port: int, api_port: int, baselines: dict[str, Path]) -> Path:
+def write_config(workdir: Path, broker_port: int, api_port: int, baselines: dict[str, Path], protocol: str) -> Path:
     lines = [
         "# written by shadow demo",
         "[mqtt]",
         'host = "127.0.0.1"',
         f"port = {broker_port}",
+        f'protocol = "{protocol}"',
         "[database]",
         f'url = "sqlite:///{workdir / "shadow-demo.db"}"',
         "raw_retention_s = 600",
@@ -198,7 +199,8 @@ def run(args: argparse.Namespace) -> int:
         print("commissioning: recording a healthy run of each robot and identifying its baseline ...", flush=True)
         baselines = {r.robot: commission(r, workdir, args.commission_s) for r in ROBOTS}
         api_port = args.port or free_port()
-        config = write_config(workdir, broker.port, api_port, baselines)
+        protocol = "5" if broker.kind == "mosquitto" else "3.1.1"  # the embedded broker speaks MQTT 3.1.1 only
+        config = write_config(workdir, broker.port, api_port, baselines, protocol)
         log = open(workdir / "demo.log", "ab")  # noqa: SIM115 - closed when the demo ends
         processes.append(subprocess.Popen(_python("-m", "shadow", "serve", "--config", str(config)), stdout=log,
                                           stderr=log))  # fmt: skip
@@ -221,6 +223,8 @@ def run(args: argparse.Namespace) -> int:
                         SITE,
                         "--cell",
                         CELL,
+                        "--protocol",
+                        protocol,
                         "--truth",
                         str(workdir / f"{r.robot}-truth.json"),
                     ),

@@ -69,11 +69,12 @@ def test_demo_rejects_a_negative_duration() -> None:
 
 @pytest.mark.mosquitto
 @pytest.mark.slow
-def test_demo_commissions_follows_both_robots_and_stops(tmp_path: Path) -> None:
+@pytest.mark.parametrize("broker", ["mosquitto", "embedded"])
+def test_demo_commissions_follows_both_robots_and_stops(tmp_path: Path, broker: str) -> None:
     port = free_loopback_port()
     proc = subprocess.Popen(
         [sys.executable, "-m", "shadow", "demo", "--duration", "90", "--port", str(port), "--workdir", str(tmp_path),
-         "--commission-s", "6"],
+         "--commission-s", "6", "--broker", broker],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
     )  # fmt: skip
     seen: dict[str, object] = {}
@@ -97,6 +98,6 @@ def test_demo_commissions_follows_both_robots_and_stops(tmp_path: Path) -> None:
     assert proc.returncode == 0, err
     assert set(seen) == {"demo-site/cell-1/picker-1", "demo-site/cell-1/aligner-1"}
     assert all(h is not None for h in seen.values()), seen  # both robots were assessed from the live stream
-    assert "advisory only" in out and "broker: mosquitto on mqtt://127.0.0.1:" in out
+    assert "advisory only" in out and f"broker: {broker} on mqtt://127.0.0.1:" in out
     assert f"dashboard: http://127.0.0.1:{port}/" in out and "demo stopped" in out
     assert (tmp_path / "picker-1-baseline.json").exists() and (tmp_path / "aligner-1-baseline.json").exists()
