@@ -24,57 +24,21 @@ import pytest
 import sqlalchemy as sa
 
 from shadow.cli.serve import build_service
-from shadow.config import RobotEntry, ServiceConfig
 from shadow.ingest.mqtt import MqttSettings, ReceivedMessage, RobotSubscription
 from shadow.ingest.topics import RobotAddress, TopicLayout
 from shadow.ingest.wire import SampleBatch, encode_binary, encode_json
-from shadow.service import RobotPipeline, Service
+from shadow.service import RobotPipeline
 from shadow.store import schema
 from shadow.store.repository import SqlStore, StoreUnavailableError
 from simulators.publish import BatchPublisher, PublishError
 from tests.servers import Broker, PostgresServer, RestartableBroker
-from tests.synthetic import EXAMPLE_DELTA, delta_stream
+from tests.service.common import config_for, raw_seqs, start, unique_robot, wait_until
+from tests.synthetic import delta_stream
 
 pytestmark = pytest.mark.mosquitto
 
 DB_OUTAGE_S = float(os.environ.get("SHADOW_DB_OUTAGE_S", "10"))  # 30 s in the long run, 10 s by default
 HELD_BOUND = 100  # messages the pipeline may hold while the store is down (RobotPipeline.max_held_messages)
-
-
-def unique_robot(prefix: str) -> str:
-    return f"{prefix}{int(time.time() * 1000) % 100000}"
-
-
-def config_for(host: str, port: int, database_url: str, robot: str) -> ServiceConfig:
-    return ServiceConfig(
-        mqtt=MqttSettings(host=host, port=port),
-        database_url=database_url,
-        robots=(RobotEntry(RobotAddress("kestrel", "line4", robot), Path(EXAMPLE_DELTA)),),
-    )
-
-
-def wait_until(predicate: Any, timeout_s: float = 60.0) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return False
-
-
-def start(config: ServiceConfig, store: SqlStore) -> Service:
-    service = build_service(config, store)
-    service.start()
-    assert wait_until(lambda: all(s.connected.is_set() for s in service.subscriptions), 10)
-    return service
-
-
-def raw_seqs(store: SqlStore, robot_id: str) -> list[int]:
-    with store.engine.connect() as conn:
-        rows = conn.execute(
-            sa.select(schema.raw_batches.c.seq).where(schema.raw_batches.c.robot_id == robot_id).order_by("seq")
-        )
-        return [int(r[0]) for r in rows]
 
 
 class RawPublisher:

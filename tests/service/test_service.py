@@ -12,53 +12,16 @@ from pathlib import Path
 import numpy as np
 import paho.mqtt.client as mqtt
 import pytest
-import sqlalchemy as sa
 
-from shadow.cli.serve import build_service
-from shadow.config import RobotEntry, ServiceConfig
-from shadow.ingest.mqtt import MqttSettings
-from shadow.ingest.topics import RobotAddress, TopicLayout
-from shadow.service import Service, pack_checkpoint, unpack_checkpoint
-from shadow.store import schema
+from shadow.ingest.topics import TopicLayout
+from shadow.service import pack_checkpoint, unpack_checkpoint
 from shadow.store.repository import SqlStore
 from simulators.publish import BatchPublisher
 from tests.servers import Broker
-from tests.synthetic import EXAMPLE_DELTA, delta_stream
+from tests.service.common import config_for, raw_seqs, start, wait_until
+from tests.synthetic import delta_stream
 
 pytestmark = pytest.mark.mosquitto
-
-
-def config_for(broker: Broker, db: Path, robot: str) -> ServiceConfig:
-    address = RobotAddress("kestrel", "line2", robot)
-    return ServiceConfig(
-        mqtt=MqttSettings(host=broker.host, port=broker.port),
-        database_url=f"sqlite:///{db}",
-        robots=(RobotEntry(address, Path(EXAMPLE_DELTA)),),
-    )
-
-
-def wait_until(predicate, timeout_s: float = 60.0) -> bool:  # type: ignore[no-untyped-def]
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.05)
-    return False
-
-
-def start(config: ServiceConfig, store: SqlStore) -> Service:
-    service = build_service(config, store)
-    service.start()
-    assert wait_until(lambda: all(s.connected.is_set() for s in service.subscriptions), 10)
-    return service
-
-
-def raw_seqs(store: SqlStore, robot_id: str) -> list[int]:
-    with store.engine.connect() as conn:
-        rows = conn.execute(
-            sa.select(schema.raw_batches.c.seq).where(schema.raw_batches.c.robot_id == robot_id).order_by("seq")
-        )
-        return [int(r[0]) for r in rows]
 
 
 def publish_raw(broker: Broker, topic: str, payloads: list[bytes]) -> None:
@@ -75,7 +38,9 @@ def publish_raw(broker: Broker, topic: str, payloads: list[bytes]) -> None:
 
 def test_stream_with_bad_and_duplicate_messages_lands_once(mosquitto_broker: Broker, tmp_path: Path) -> None:
     robot = f"p{int(time.time() * 1000) % 100000}"
-    config = config_for(mosquitto_broker, tmp_path / "s.db", robot)
+    config = config_for(
+        mosquitto_broker.host, mosquitto_broker.port, f"sqlite:///{tmp_path / 's.db'}", robot, cell="line2"
+    )
     store = SqlStore(config.database_url)
     service = start(config, store)
     entry = config.robots[0]
@@ -119,7 +84,9 @@ def test_stream_with_bad_and_duplicate_messages_lands_once(mosquitto_broker: Bro
 
 def test_restart_resumes_from_the_checkpoint_without_loss_or_doubling(mosquitto_broker: Broker, tmp_path: Path) -> None:
     robot = f"r{int(time.time() * 1000) % 100000}"
-    config = config_for(mosquitto_broker, tmp_path / "r.db", robot)
+    config = config_for(
+        mosquitto_broker.host, mosquitto_broker.port, f"sqlite:///{tmp_path / 'r.db'}", robot, cell="line2"
+    )
     entry = config.robots[0]
     stream = delta_stream(np.random.default_rng(12), duration_s=10.0, impact_at_s=7.0)
     batches = stream.batches(robot, 10)
