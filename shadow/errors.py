@@ -101,3 +101,7 @@ class TimeOrderError(ShadowError, ValueError):
 
 class OutOfRangeError(ShadowError, ValueError):
     """A numeric argument lies outside its valid range (negative time step, non-positive bandwidth or lead, ...)."""
+
+
+class RecordingError(ShadowError, ValueError):
+    """A recording cannot be read, or does not belong to the described robot (message names file, line, field)."""

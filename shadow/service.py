@@ -25,7 +25,7 @@ import threading
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Protocol
+from typing import Protocol
 
 import numpy as np
 
@@ -360,8 +360,3 @@ class Service:
 def subscription_for(address: RobotAddress, layout: TopicLayout, settings: MqttSettings) -> RobotSubscription:
     """The persistent session of one robot on its samples topic."""
     return RobotSubscription(str(address), layout.samples_topic(address), settings)
-
-
-def describe_counts(status: ServiceStatus) -> dict[str, Any]:
-    """Plain numbers for logs and the status endpoint."""
-    return {rid: vars(s).copy() for rid, s in status.robots.items()}

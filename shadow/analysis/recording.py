@@ -30,11 +30,10 @@ from pathlib import Path
 import numpy as np
 from numpy.typing import NDArray
 
-from shadow.cli.commission import RecordingError
-from shadow.errors import RejectedMessageError
+from shadow.errors import RecordingError, RejectedMessageError
 from shadow.ingest.wire import PlausibilityLimits, PositionUnit, SampleBatch, check_plausible, decode_json
 from shadow.robots.description import RobotDescription
-from shadow.robots.parameters import DeltaParameters, MeasuredQuantity
+from shadow.robots.parameters import MeasuredQuantity
 
 __all__ = ["CSV_BATCH_SAMPLES", "Recording", "RecordingError", "SkippedLine", "plausibility_limits", "read_recording"]
 
@@ -87,10 +86,7 @@ class Recording:
 
 def plausibility_limits(description: RobotDescription) -> PlausibilityLimits:
     """The range checks of the described robot (the same ones the live ingest applies)."""
-    params = description.parameters
-    if isinstance(params, DeltaParameters):
-        return PlausibilityLimits.for_delta(params)
-    return PlausibilityLimits.for_hexapod(params)  # type: ignore[arg-type]
+    return PlausibilityLimits.for_parameters(description.parameters)
 
 
 def read_recording(

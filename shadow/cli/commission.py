@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shadow.errors import ConfigurationError, RejectedMessageError, ShadowError
+from shadow.errors import ConfigurationError, RecordingError, RejectedMessageError
 from shadow.estimation.baseline import Baseline
 from shadow.estimation.commissioning import (
     PAYLOAD_SPLIT,
@@ -52,7 +52,7 @@ from shadow.robots.description import (
     load_description,
 )
 from shadow.robots.drives import effort_from_current
-from shadow.robots.parameters import DeltaParameters, MeasuredQuantity, RigidPayload
+from shadow.robots.parameters import MeasuredQuantity, RigidPayload
 
 Array = NDArray[np.float64]
 
@@ -63,10 +63,6 @@ DEFAULT_POLY_ORDER = 5
 DEFAULT_MAX_GAP_S = 0.05
 DEFAULT_CONFIDENCE = 0.95
 DEFAULT_MAX_CONDITION = 200.0
-
-
-class RecordingError(ShadowError, ValueError):
-    """A recording cannot be read, or does not belong to the described robot (message names file, line, field)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -160,13 +156,6 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
 # ---------------------------------------------------------------------------------------------- reading
 
 
-def _limits(description: RobotDescription) -> PlausibilityLimits:
-    params = description.parameters
-    if isinstance(params, DeltaParameters):
-        return PlausibilityLimits.for_delta(params)
-    return PlausibilityLimits.for_hexapod(params)
-
-
 def read_recording(path: Path, description: RobotDescription, *, robot_id: str | None = None) -> Recording:
     """Read a recording (one JSON wire message per line) of the described robot.
 
@@ -181,7 +170,7 @@ def read_recording(path: Path, description: RobotDescription, *, robot_id: str |
     except OSError as exc:
         raise RecordingError(f"{path}: cannot read the recording: {exc.strerror or exc}") from exc
     n = description.n_actuators
-    limits = _limits(description)
+    limits = PlausibilityLimits.for_parameters(description.parameters)
     wanted = robot_id if robot_id is not None else description.name
     drives = description.parameters.drives
     lines = raw.split(b"\n")

@@ -62,12 +62,7 @@ def build_service(config: ServiceConfig, store: SqlStore) -> Service:
         settings = default_settings(description, sample_rate_hz=entry.sample_rate_hz)
         monitor = RobotMonitor(entry.robot_id, description, load_baseline(entry.baseline_path), settings)
         sub = subscription_for(entry.address, layout, config.mqtt)
-        params = description.parameters
-        limits = (
-            PlausibilityLimits.for_delta(params)  # type: ignore[arg-type]
-            if description.family == "delta"
-            else PlausibilityLimits.for_hexapod(params)  # type: ignore[arg-type]
-        )
+        limits = PlausibilityLimits.for_parameters(description.parameters)
         pipelines.append(
             RobotPipeline(
                 entry.address,

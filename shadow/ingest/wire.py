@@ -301,6 +301,13 @@ class PlausibilityLimits:
         return int(np.shape(self.position_lower)[0])
 
     @classmethod
+    def for_parameters(cls, params: DeltaParameters | HexapodParameters) -> PlausibilityLimits:
+        """The limits of either family (:meth:`for_delta` or :meth:`for_hexapod`), with the default margins."""
+        if isinstance(params, DeltaParameters):
+            return cls.for_delta(params)
+        return cls.for_hexapod(params)
+
+    @classmethod
     def for_delta(
         cls, params: DeltaParameters, *, position_margin_rad: float = 0.05, effort_factor: float = 3.0
     ) -> PlausibilityLimits:
