@@ -50,11 +50,13 @@ from scipy.stats import norm
 from shadow.detection.events import CollisionEvent
 from shadow.detection.health import Health, HealthLimits, actuator_health, robot_health
 from shadow.detection.momentum_observer import (
+    MIN_EXTREME_VALUE_BLOCKS,
     CollisionMonitor,
     CollisionMonitorState,
     CollisionSettings,
     ObserverState,
     alpha_for_false_alarm_rate,
+    extreme_value_thresholds,
     residual_thresholds,
 )
 from shadow.detection.wear import (
@@ -76,6 +78,8 @@ from shadow.robots.parameters import MeasuredQuantity
 from shadow.store.repository import StepResults
 
 Array = NDArray[np.float64]
+
+EXTREME_VALUE_BLOCK_S = 1.0  # block length of the threshold calibration: longer than a pick-and-place cycle
 
 
 @dataclass(frozen=True, slots=True)
@@ -169,16 +173,27 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
 def calibrated_thresholds(residual: Array, settings: MonitorSettings, *, margin: float = 1.25) -> Array:
     """Collision thresholds from the observer residual of a healthy run (N, n) [N m | N].
 
-    The larger of the Gaussian bound ``z_(1 - alpha/2) sigma_r`` for the false-alarm target
-    (:func:`~shadow.detection.momentum_observer.residual_thresholds`) and ``margin`` times the largest
-    healthy |r|: a healthy run's residual is not Gaussian (what the rigid model leaves out comes with the
-    motion), and its own peaks must not count as collisions.
+    A healthy run's residual is not Gaussian (what the rigid model leaves out comes with the motion), so its
+    peaks set the threshold: the level that 1 s blocks of the residual exceed at the configured false-alarm
+    rate, shared among the actuators (``p = rate * 1 s / n``), from the Gumbel law fitted to the block maxima
+    (:func:`~shadow.detection.momentum_observer.extreme_value_thresholds`). Never below ``margin`` times the
+    largest healthy |r| nor the Gaussian bound ``z_(1 - alpha/2) sigma_r``
+    (:func:`~shadow.detection.momentum_observer.residual_thresholds`); a run too short for the fit
+    (under ``MIN_EXTREME_VALUE_BLOCKS`` seconds) gets those two alone.
     """
-    alpha = alpha_for_false_alarm_rate(settings.false_alarms_per_day / 24.0, settings.sample_rate_hz)
-    settle = int(5.0 * settings.sample_rate_hz / settings.observer_gain_per_s)  # five observer time constants
+    rate_hz = settings.sample_rate_hz
+    alpha = alpha_for_false_alarm_rate(settings.false_alarms_per_day / 24.0, rate_hz)
+    settle = int(5.0 * rate_hz / settings.observer_gain_per_s)  # five observer time constants
     gaussian = residual_thresholds(residual, alpha, settle_samples=settle)
     peak = np.max(np.abs(residual[settle:]), axis=0)
-    return np.maximum(gaussian, margin * peak)
+    thr = np.maximum(gaussian, margin * peak)
+    block = max(int(round(rate_hz * EXTREME_VALUE_BLOCK_S)), 1)
+    if (residual.shape[0] - settle) // block >= MIN_EXTREME_VALUE_BLOCKS:
+        p = settings.false_alarms_per_day / 86400.0 * EXTREME_VALUE_BLOCK_S / residual.shape[1]
+        thr = np.maximum(
+            thr, extreme_value_thresholds(residual, block_samples=block, exceedance_per_block=p, settle_samples=settle)
+        )
+    return thr
 
 
 def collision_thresholds(noise_std: Array, rated: Array, settings: MonitorSettings) -> Array:

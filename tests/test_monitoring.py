@@ -151,6 +151,27 @@ def test_calibrated_thresholds_clear_the_healthy_residual_and_the_gaussian_bound
     assert thr[2] >= z * 0.3 * 0.95 and thr[0] >= z * 0.1 * 0.95
 
 
+def test_calibrated_thresholds_extrapolate_the_healthy_peaks_to_the_false_alarm_target(
+    rng: np.random.Generator,
+) -> None:
+    from scipy.stats import gumbel_r
+
+    from shadow.monitoring import calibrated_thresholds
+
+    stream = delta_stream(rng, duration_s=0.1)
+    s = default_settings(stream.description)
+    # one peak a second whose heights follow a known Gumbel law (loc 1, scale 0.1 N m), over small noise
+    n_blocks = 400
+    residual = rng.normal(0.0, 0.02, size=(n_blocks * 1000, 3))
+    peaks = gumbel_r.rvs(loc=1.0, scale=0.1, size=(n_blocks, 3), random_state=rng)
+    residual[np.arange(n_blocks) * 1000 + 500] = peaks
+    thr = calibrated_thresholds(residual, s)
+    # reference: scipy.stats.gumbel_r's own quantile at the per-block share of the false-alarm target
+    p = s.false_alarms_per_day / 86400.0 / 3
+    expected = gumbel_r.isf(p, loc=1.0, scale=0.1)
+    assert thr == pytest.approx(np.full(3, expected), rel=0.1)
+
+
 def test_rising_friction_raises_wear_levels_on_its_own_actuator_only() -> None:
     import dataclasses
 

@@ -43,6 +43,14 @@ Gaussian residual exceeds it on a fraction alpha of samples. An alarm starts onl
 threshold, so the false-alarm rate is bounded by ``alpha * f_s`` per second whatever the correlation
 of r; requiring a minimum duration above threshold only lowers it further (common practice, no
 source). :func:`alpha_for_false_alarm_rate` inverts this bound.
+
+On a real robot the healthy residual is not white noise: what the rigid model leaves out (the Stribeck rise,
+heating, a lightly damped mode) follows the motion, and its peaks, not its standard deviation, set the false
+alarms. :func:`extreme_value_thresholds` therefore models the peaks themselves: the maxima of ``|r|`` over
+blocks of equal length follow a Gumbel law ``P(max <= x) = exp(-exp(-(x - mu) / s))`` (the extremal types
+theorem; Coles, "An Introduction to Statistical Modeling of Extreme Values", Springer 2001, ch. 3), fitted by
+maximum likelihood, and the threshold is the level a block exceeds with the probability the false-alarm
+target allows (``p = rate * block length``): an extrapolation from minutes of healthy run to a day.
 """
 
 from __future__ import annotations
@@ -52,7 +60,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.stats import norm
+from scipy.stats import gumbel_r, norm
 
 from shadow.detection.events import CollisionEvent, as_float_array
 from shadow.errors import ConfigurationError, ShapeError, TimeOrderError, expect_finite, expect_shape
@@ -237,6 +245,52 @@ def residual_thresholds(r_baseline: Array, alpha: float, *, settle_samples: int 
     expect_finite("r_baseline", tail)
     sigma_r = tail.std(axis=0, ddof=1)  # sigma_r of the observer-filtered noise
     thr: Array = float(norm.isf(alpha / 2.0)) * sigma_r  # z_(1 - alpha/2) sigma_r (Gaussian tail)
+    return thr
+
+
+MIN_EXTREME_VALUE_BLOCKS = 20  # fewer block maxima make the Gumbel fit too loose to extrapolate from
+
+
+def extreme_value_thresholds(
+    r_baseline: Array, *, block_samples: int, exceedance_per_block: float, settle_samples: int = 0
+) -> Array:
+    """Per-actuator levels that the block maxima of ``|r|`` exceed with probability ``exceedance_per_block``.
+
+    Parameters
+    ----------
+    r_baseline : (N, n) observer residual on healthy data [N m | N]
+    block_samples : samples per block (one block should span at least a motion cycle)
+    exceedance_per_block : p in (0, 1), e.g. false alarms per second * block length [s] / n actuators
+    settle_samples : leading samples to drop (the observer's start-up transient)
+
+    Returns
+    -------
+    (n,) thresholds ``x_p = mu - s ln(-ln(1 - p))`` of the Gumbel law fitted to the block maxima
+    (Coles 2001, eq. 3.4) [N m | N]
+
+    Raises
+    ------
+    ShapeError when fewer than ``MIN_EXTREME_VALUE_BLOCKS`` blocks remain; ConfigurationError for p or
+    block_samples out of range.
+    """
+    expect_shape("r_baseline", r_baseline, (None, None))
+    if block_samples < 1:
+        raise ConfigurationError(f"block_samples: must be >= 1, got {block_samples!r}")
+    if not 0.0 < exceedance_per_block < 1.0:
+        raise ConfigurationError(f"exceedance_per_block: must lie in (0, 1), got {exceedance_per_block!r}")
+    tail = np.abs(r_baseline[settle_samples:])
+    expect_finite("r_baseline", tail)
+    n_blocks = tail.shape[0] // block_samples
+    if n_blocks < MIN_EXTREME_VALUE_BLOCKS:
+        raise ShapeError(
+            f"r_baseline: {n_blocks} blocks of {block_samples} samples after settling, "
+            f"need at least {MIN_EXTREME_VALUE_BLOCKS} for the extreme-value fit"
+        )
+    maxima = tail[: n_blocks * block_samples].reshape(n_blocks, block_samples, -1).max(axis=1)  # (B, n)
+    thr = np.empty(maxima.shape[1])
+    for i in range(maxima.shape[1]):  # n is 3 or 6: a loop over actuators, not samples
+        mu, scale = gumbel_r.fit(maxima[:, i])  # maximum-likelihood Gumbel fit of the block maxima
+        thr[i] = gumbel_r.isf(exceedance_per_block, mu, scale)  # P(block max > x_p) = p
     return thr
 
 

@@ -15,6 +15,7 @@ from shadow.detection.momentum_observer import (
     MomentumObserver,
     ObserverState,
     alpha_for_false_alarm_rate,
+    extreme_value_thresholds,
     find_runs,
     linear_scan,
     observer_inputs,
@@ -406,3 +407,24 @@ def test_real_models_step_and_wrench(family, amplitude, w_ext):
     assert_allclose(ev.external_wrench, w_ext, rtol=0.03, atol=0.01 * np.abs(w_ext).max())
     assert 0.5 <= ev.start_time_s <= 0.51 and 1.0 <= ev.end_time_s <= 1.1
     assert_allclose(ev.relative_peak, np.abs(ev.peak_residual) / rated, rtol=1e-12)
+
+
+@pytest.mark.parametrize("p", [1e-2, 1e-4])
+def test_extreme_value_thresholds_match_the_exact_maximum_of_gaussian_noise(p: float) -> None:
+    # Reference: the maximum of m independent |N(0, s)| samples exceeds x with probability
+    # 1 - (1 - 2 Q(x / s))^m (order statistics of iid samples), so x = s Q^-1((1 - (1 - p)^(1/m)) / 2), from
+    # scipy.stats.norm. The Gumbel fit (Coles 2001, ch. 3) approaches it from above: Gaussian maxima converge to
+    # the Gumbel law slowly and from the lighter-tailed side, so the extrapolation errs on the safe side.
+    rng = np.random.default_rng(20240601)
+    sigma, m = np.array([0.1, 0.3]), 1000
+    residual = rng.normal(0.0, sigma, size=(200 * m, 2))
+    thr = extreme_value_thresholds(residual, block_samples=m, exceedance_per_block=p)
+    exact = sigma * norm.isf((1.0 - (1.0 - p) ** (1.0 / m)) / 2.0)
+    assert np.all(thr >= 0.97 * exact) and np.all(thr <= 1.25 * exact)
+
+
+def test_extreme_value_thresholds_need_enough_blocks() -> None:
+    with pytest.raises(ShapeError, match="need at least 20"):
+        extreme_value_thresholds(np.zeros((1900, 3)), block_samples=100, exceedance_per_block=1e-3)
+    with pytest.raises(ConfigurationError, match="exceedance_per_block"):
+        extreme_value_thresholds(np.zeros((5000, 3)), block_samples=100, exceedance_per_block=1.5)
