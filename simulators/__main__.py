@@ -2,6 +2,7 @@
 
     python -m simulators live --family delta --port 1883 --site demo --cell line1 --robot picker-1
     python -m simulators record --family hexapod --duration 60 --out run.jsonl --truth run.truth.json
+    python -m simulators scenario simulators/scenarios/wear_30_days.toml --record wear.jsonl --truth wear.truth.json
 
 Every network target is the broker given (loopback by default). The recording holds the very messages a
 controller would publish (JSON wire format, one per line); the truth file what really happened.
@@ -10,6 +11,7 @@ controller would publish (JSON wire format, one per line); the truth file what r
 from __future__ import annotations
 
 import argparse
+import contextlib
 import dataclasses
 import json
 import os
@@ -31,6 +33,7 @@ from shadow.robots.description import example_paths, load_description  # noqa: E
 from simulators.live import Feed, FeedSettings, pace  # noqa: E402
 from simulators.publish import BatchPublisher, RecordingWriter  # noqa: E402
 from simulators.run import DemoEffects  # noqa: E402
+from simulators.scenario import generate, load_scenario, truth_document  # noqa: E402
 
 
 def feed_settings(family: str) -> tuple[FeedSettings, FeedSettings]:
@@ -97,6 +100,54 @@ def record(args: argparse.Namespace) -> int:
     return 0
 
 
+def scenario(args: argparse.Namespace) -> int:
+    """Simulate a scenario file into a recording and/or onto a broker, with its ground truth."""
+    sc = load_scenario(args.file)
+    if args.record is None and not args.publish:
+        raise ShadowError("nothing to do: give --record FILE, --publish, or both")
+    truth_path = Path(args.truth) if args.truth else Path(str(args.record or sc.name) + ".truth.json")
+    address = RobotAddress(args.site, args.cell, sc.robot_id)
+    total = sc.sampling.windows
+    truths = []
+    messages = 0
+    with contextlib.ExitStack() as stack:
+        writer = stack.enter_context(RecordingWriter(args.record)) if args.record is not None else None
+        publisher = None
+        if args.publish:
+            settings = MqttSettings(host=args.host, port=args.port, protocol=args.protocol)
+            layout = TopicLayout(args.prefix)
+            publisher = stack.enter_context(BatchPublisher(address, settings, layout=layout, encoding=args.encoding))
+        started = time.monotonic()
+        for window in generate(sc):
+            for batch in window.batches:
+                if writer is not None:
+                    writer.write(batch)
+                if publisher is not None:
+                    publisher.publish(batch)
+            messages += len(window.batches)
+            truths.append(window.truth)
+            t = window.truth
+            progress = (
+                f"window {window.index + 1}/{total}  day {window.day:7.2f}  {len(window.batches)} messages  "
+                f"{len(t.impacts)} impacts  {len(t.pick_faults)} pick faults  {len(t.sensor_faults)} sensor faults  "
+                f"{time.monotonic() - started:.0f} s"
+            )
+            end = "\r" if sys.stderr.isatty() and window.index + 1 < total else "\n"
+            print(progress, end=end, file=sys.stderr, flush=True)  # noqa: T201
+    truth_path.parent.mkdir(parents=True, exist_ok=True)
+    truth_path.write_text(json.dumps(truth_document(sc, truths), indent=1))
+    where = " and ".join(
+        w
+        for w in (
+            str(args.record) if args.record else "",
+            f"{address} on {args.host}:{args.port}" if args.publish else "",
+        )
+        if w
+    )
+    print(f"{messages} messages of {total} windows to {where}, ground truth in {truth_path}")  # noqa: T201
+    return 0
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m simulators", description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)  # fmt: skip
@@ -123,6 +174,19 @@ def main(argv: list[str] | None = None) -> int:
         else:
             p.add_argument("--out", type=Path, required=True)
             p.add_argument("--start", type=float, default=None, help="Unix time of the first sample")
+    p = sub.add_parser("scenario", help="scenario: simulate a scenario file (docs/scenario-file.md)")
+    p.add_argument("file", type=Path, help="scenario file (TOML)")
+    p.add_argument("--record", type=Path, default=None, metavar="OUT", help="write the messages here (JSON lines)")
+    p.add_argument("--truth", default=None, metavar="TRUTH", help="ground-truth file (default: OUT.truth.json)")
+    p.add_argument("--publish", action="store_true", help="also publish to the broker (as fast as it takes them)")
+    p.add_argument("--host", default="127.0.0.1")
+    p.add_argument("--port", type=int, default=1883)
+    p.add_argument("--prefix", default="shadow", help="topic prefix")
+    p.add_argument("--protocol", choices=("5", "3.1.1"), default="5", help="MQTT protocol version")
+    p.add_argument("--site", default="demo-site")
+    p.add_argument("--cell", default="cell-1")
+    p.add_argument("--encoding", choices=("binary", "json"), default="binary")
+    p.set_defaults(handler=scenario)
     args = parser.parse_args(argv)
     try:
         return int(args.handler(args))

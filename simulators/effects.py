@@ -137,6 +137,26 @@ class StribeckFriction:
             smoothing_velocity=self.smoothing_velocity,
         )
 
+    def with_factors(
+        self, *, coulomb: Array | float = 1.0, static: Array | float = 1.0, viscous: Array | float = 1.0
+    ) -> StribeckFriction:
+        """The curve with its levels scaled term by term (a wear state per actuator), each factor (n,) or (B, n).
+
+        ``coulomb`` scales F_c and F_s together (the whole sliding level rises, the Stribeck hump keeps its
+        ratio F_s / F_c), ``static`` scales F_s once more (the breakaway level alone), ``viscous`` scales b_ref.
+        Factors below 1 could put F_s under F_c, which the constructor refuses.
+        """
+        f_c, f_s, f_v = (np.asarray(f, dtype=float) for f in (coulomb, static, viscous))
+        return StribeckFriction(
+            coulomb=self.coulomb * f_c,
+            static=self.static * f_c * f_s,
+            stribeck_velocity=self.stribeck_velocity,
+            viscous_ref=self.viscous_ref * f_v,
+            viscosity_temperature_coefficient_per_k=self.viscosity_temperature_coefficient_per_k,
+            reference_temperature_c=self.reference_temperature_c,
+            smoothing_velocity=self.smoothing_velocity,
+        )
+
 
 # ---------------------------------------------------------------------------------------------- thermal
 @dataclass(frozen=True, slots=True)

@@ -62,12 +62,18 @@ class Window:
     work_piece_masses_kg: list[float]  # delta: mass lifted in each cycle of the path (0: missed pick)
 
 
-def _impact_peak(description: RobotDescription, fraction: float) -> float:
-    """A platform force of about ``fraction`` of what the drives can push at the platform [N]."""
+def rated_platform_force_n(description: RobotDescription) -> float:
+    """About what the drives can push at the platform [N]: the smallest rated effort, over the upper arm
+    length for a delta (torque / lever), as it is for a hexapod's legs (invented scale, no source)."""
     rated = min(d.rated_effort for d in description.parameters.drives)
     if description.family == "delta":
-        return fraction * rated / description.parameters.upper_arm_length_m  # type: ignore[union-attr]
-    return fraction * rated
+        return rated / description.parameters.upper_arm_length_m  # type: ignore[union-attr]
+    return rated
+
+
+def _impact_peak(description: RobotDescription, fraction: float) -> float:
+    """A platform force of about ``fraction`` of what the drives can push at the platform [N]."""
+    return fraction * rated_platform_force_n(description)
 
 
 def simulate_windows(description: RobotDescription, rng: np.random.Generator, settings: FeedSettings) -> list[Window]:

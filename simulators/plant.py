@@ -79,6 +79,61 @@ class HalfSinePulse:
         return amplitude[:, None] * self.direction
 
 
+class PulseProfile(enum.Enum):
+    """Shape of a platform force pulse over its normalised time phi = (t - t_0) / d, 0 < phi < 1."""
+
+    HALF_SINE = "half_sine"  # sin(pi phi): smooth rise, kink at the ends
+    HAVERSINE = "haversine"  # (1 - cos(2 pi phi)) / 2: smooth at the ends too
+    TRIANGLE = "triangle"  # 1 - |2 phi - 1|: linear rise to the peak at half time, linear fall
+    RECTANGLE = "rectangle"  # 1: a step on and off (a discontinuity the fixed-step integrator sees once each)
+
+
+def pulse_shape(profile: PulseProfile, phase: Array) -> Array:
+    """Normalised pulse height in [0, 1] at ``phase`` (any shape); 0 outside 0 < phase < 1."""
+    phi = np.clip(np.asarray(phase, dtype=float), 0.0, 1.0)
+    if profile is PulseProfile.HALF_SINE:
+        shape = np.sin(np.pi * phi)
+    elif profile is PulseProfile.HAVERSINE:
+        shape = 0.5 * (1.0 - np.cos(2.0 * np.pi * phi))
+    elif profile is PulseProfile.TRIANGLE:
+        shape = 1.0 - np.abs(2.0 * phi - 1.0)
+    else:
+        shape = np.ones_like(phi)
+    inside = (np.asarray(phase) > 0.0) & (np.asarray(phase) < 1.0)
+    return np.where(inside, shape, 0.0)
+
+
+@dataclass(frozen=True, slots=True)
+class ShapedPulse:
+    """Force pulses on the platform of a chosen profile, one per system (peak 0 for none).
+
+    ``w(t) = peak shape((t - t_0) / d) direction`` for ``t_0 < t < t_0 + d`` (see :func:`pulse_shape`), else 0;
+    with :attr:`PulseProfile.HALF_SINE` the same force as :class:`HalfSinePulse`. Fields as there.
+    """
+
+    start_s: Array  # (B,) t_0
+    duration_s: Array  # (B,) d > 0
+    peak: Array  # (B,) [N] (or the wrench's unit)
+    direction: Array  # (B, k)
+    profile: PulseProfile = PulseProfile.HALF_SINE
+
+    def active(self, t: float) -> NDArray[np.bool_]:
+        """(B,) True while the pulse pushes, ``t_0 < t < t_0 + d`` (peak non-zero)."""
+        phase = (t - self.start_s) / self.duration_s
+        return (phase > 0.0) & (phase < 1.0) & (self.peak != 0.0)
+
+    def wrench(self, t: float) -> Array | None:
+        """(B, k) wrench at time t, or None when no pulse is active in any system."""
+        active = self.active(t)
+        if not active.any():
+            return None
+        amplitude = np.where(active, self.peak * pulse_shape(self.profile, (t - self.start_s) / self.duration_s), 0.0)
+        return amplitude[:, None] * self.direction
+
+
+PlatformPulse = HalfSinePulse | ShapedPulse
+
+
 @dataclass(frozen=True, slots=True)
 class PlantConfig:
     """Drive effects around the rigid model. ``None`` switches an effect off."""
@@ -302,7 +357,7 @@ class Plant:
         theta_p: Array,
         *,
         n_steps: int,
-        pulses: Sequence[HalfSinePulse] = (),
+        pulses: Sequence[PlatformPulse] = (),
     ) -> PlantState:
         """Advance by ``n_steps`` internal steps with the command u (B, n) held (one control period).
 

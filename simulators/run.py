@@ -36,7 +36,7 @@ from simulators.effects import (
     encoder_count_size,
     quantise,
 )
-from simulators.plant import HalfSinePulse, MassUpdate, Plant, PlantConfig
+from simulators.plant import MassUpdate, Plant, PlantConfig, PlatformPulse
 from simulators.trajectories import PathSample, SegmentPath, pose_motion
 
 Array = NDArray[np.float64]
@@ -139,7 +139,7 @@ def run_closed_loop(
     substeps: int,
     ambient_c: Array,
     initial_temperature_c: Array,
-    pulses: Sequence[HalfSinePulse] = (),
+    pulses: Sequence[PlatformPulse] = (),
     fault_flags: NDArray[np.uint8] | None = None,
 ) -> RunRecord:
     """Simulate B systems for T samples in closed loop; see the module docstring for the order of events.

@@ -29,7 +29,7 @@ unloaded, and a low-amplitude multi-sine about a pose, ``x_j(t) = x0_j + sum_i a
 from __future__ import annotations
 
 import enum
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
@@ -145,6 +145,17 @@ class PickPlaceCycles:
     pick_points_m: Array  # (C, 3) pick point of each cycle
     place_points_m: Array  # (C, 3)
     workpiece_mass_kg: Array  # (C,)
+    missed: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, dtype=bool))  # (C,) closed on nothing
+    doubled: NDArray[np.bool_] = field(default_factory=lambda: np.zeros(0, dtype=bool))  # (C,) two pieces lifted
+
+    def grip_times_s(self) -> tuple[Array, Array]:
+        """(close (C,), open (C,)): when the gripper of each cycle closes at the pick and opens at the place [s].
+
+        Each cycle is 10 segments (see :func:`delta_pick_place`): it closes at the start of the second, opens at
+        the start of the seventh.
+        """
+        starts = self.path.start_s.reshape(-1, 10)
+        return starts[:, 1].copy(), starts[:, 6].copy()
 
 
 def delta_pick_place(
@@ -200,11 +211,14 @@ def delta_pick_place(
     payloads: list[Array] = []
     picks, places = [], []
     masses = np.clip(rng.normal(workpiece_mass_mean_kg, workpiece_mass_std_kg, size=n_cycles), 0.0, None)
+    missed = np.zeros(n_cycles, dtype=bool)
+    doubled = np.zeros(n_cycles, dtype=bool)
     if missed_pick_probability > 0.0 or double_pick_probability > 0.0:  # drawn only then: seeded runs stay as before
         u = rng.uniform(size=n_cycles)
-        masses = np.where(u < missed_pick_probability, 0.0, masses)
-        masses = np.where((u >= missed_pick_probability) & (u < missed_pick_probability + double_pick_probability),
-                          2.0 * masses, masses)  # fmt: skip
+        missed = u < missed_pick_probability
+        doubled = (u >= missed_pick_probability) & (u < missed_pick_probability + double_pick_probability)
+        masses = np.where(missed, 0.0, masses)
+        masses = np.where(doubled, 2.0 * masses, masses)
     empty = np.array([tool_mass_kg])
     for c in range(n_cycles):
         place = toward(pick, target(place_centre))
@@ -236,6 +250,8 @@ def delta_pick_place(
         pick_points_m=np.array(picks),
         place_points_m=np.array(places),
         workpiece_mass_kg=masses,
+        missed=missed,
+        doubled=doubled,
     )
 
 
