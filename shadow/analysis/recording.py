@@ -35,7 +35,15 @@ from shadow.ingest.wire import PlausibilityLimits, PositionUnit, SampleBatch, ch
 from shadow.robots.description import RobotDescription
 from shadow.robots.parameters import MeasuredQuantity
 
-__all__ = ["CSV_BATCH_SAMPLES", "Recording", "RecordingError", "SkippedLine", "plausibility_limits", "read_recording"]
+__all__ = [
+    "CSV_BATCH_SAMPLES",
+    "CoverageGap",
+    "Recording",
+    "RecordingError",
+    "SkippedLine",
+    "plausibility_limits",
+    "read_recording",
+]
 
 Array = NDArray[np.float64]
 
@@ -48,24 +56,45 @@ _FALSE = frozenset({"0", "false", "no", "off", ""})
 class SkippedLine:
     """A line of the recording that was not analysed, and why (the reason names the field)."""
 
-    line: int  # 1-based line number in the file
+    line: int  # 1-based line number in the file, or the message's sequence number (``where == "seq"``)
     reason: str
+    where: str = "line"  # "line" (a file) or "seq" (a stored message)
 
     def __str__(self) -> str:
-        return f"line {self.line}: {self.reason}"
+        return f"{self.where} {self.line}: {self.reason}"
+
+
+@dataclass(frozen=True, slots=True)
+class CoverageGap:
+    """A stretch of the asked time range for which the source holds no samples (a stored range only)."""
+
+    start_s: float  # last sample before the gap, or the range's start [s, Unix UTC]
+    end_s: float  # first sample after the gap, or the range's end [s, Unix UTC]
+    reason: str  # in words: which messages are missing and why they may be
+
+    @property
+    def duration_s(self) -> float:
+        return self.end_s - self.start_s
 
 
 @dataclass(frozen=True, slots=True)
 class Recording:
     """The usable part of a recorded run of one robot, as wire batches in time order."""
 
-    path: Path
-    layout: str  # "jsonl" or "csv"
+    path: Path  # the file; for a stored range the database file (SQLite) or the URL's database name
+    layout: str  # "jsonl", "csv", or "store" (raw batches read from the store, shadow.analysis.stored)
     robot_id: str
     batches: tuple[SampleBatch, ...]
-    first_lines: tuple[int, ...]  # line number of each batch's first sample (JSON: its line)
+    first_lines: tuple[int, ...]  # line number of each batch's first sample (JSON: its line; store: its seq)
     skipped: tuple[SkippedLine, ...] = field(default=())
     other_robots: tuple[str, ...] = field(default=())  # robot ids found in the file besides robot_id
+    source: str = ""  # how people name the source when it is not a file (a stored range: store, robot, range)
+    gaps: tuple[CoverageGap, ...] = field(default=())  # stretches of a stored range with no retained samples
+
+    @property
+    def origin(self) -> str:
+        """The source in words: the file name, or the stored range."""
+        return self.source or self.path.name
 
     @property
     def n_samples(self) -> int:

@@ -386,12 +386,20 @@ def build_report(
         "it never commands the robot.</p>",
         f"<h1>{_e(title)}</h1>",
         _table(
-            ["robot", "description", "recording", "samples", "start (UTC)", "end (UTC)", "duration"],
+            [
+                "robot",
+                "description",
+                "stored range" if rec.layout == "store" else "recording",
+                "samples",
+                "start (UTC)",
+                "end (UTC)",
+                "duration",
+            ],
             [
                 [
                     rec.robot_id,
                     f"{description.name} ({description.family})",
-                    rec.path.name,
+                    rec.origin,
                     analysis.n_samples,
                     _iso(rec.start_s),
                     _iso(rec.end_s),
@@ -400,7 +408,8 @@ def build_report(
             ],
         ),  # fmt: skip
         f'<p class="muted">Analysed by the live monitor\'s code in {analysis.elapsed_s:.2f} s '
-        f"({analysis.samples_per_s:,.0f} samples/s); {len(rec.skipped)} lines skipped; "
+        f"({analysis.samples_per_s:,.0f} samples/s); {len(rec.skipped)} "
+        f"{'stored messages' if rec.layout == 'store' else 'lines'} skipped; "
         f"{len(analysis.events)} events.</p>",
         "<h2 id=health>Health</h2>",
         _health_section(analysis),
@@ -503,13 +512,25 @@ def build_report(
         )
     else:
         out.append("<p>The whole run was monitored.</p>")
+    if rec.layout == "store":
+        if rec.gaps:
+            out.append(f"<p>Not retained in the store: {len(rec.gaps)} stretches of the asked range.</p>")
+            out.append(
+                _table(
+                    ["from (UTC)", "to (UTC)", "length", "reason"],
+                    [[_iso(g.start_s), _iso(g.end_s), f"{g.duration_s:.3f} s", g.reason] for g in rec.gaps],
+                )
+            )
+        else:
+            out.append("<p>The store retains every message of the asked range.</p>")
+    what = "stored messages" if rec.layout == "store" else "lines"
     if rec.skipped:
         shown = rec.skipped[:200]
-        out.append(_table(["line", "reason"], [[s.line, s.reason] for s in shown]))
+        out.append(_table([shown[0].where, "reason"], [[s.line, s.reason] for s in shown]))
         if len(rec.skipped) > len(shown):
-            out.append(f"<p>... and {len(rec.skipped) - len(shown)} more skipped lines.</p>")
+            out.append(f"<p>... and {len(rec.skipped) - len(shown)} more skipped {what}.</p>")
     else:
-        out.append("<p>No line of the recording was skipped.</p>")
+        out.append(f"<p>No {what[:-1]} of the {'range' if rec.layout == 'store' else 'recording'} was skipped.</p>")
     out.append(f'<p class="muted">{_e(ADVISORY_NOTICE)}</p></body></html>')
     return "\n".join(out)
 

@@ -1,8 +1,12 @@
 """``shadow analyze``: run the live monitor over a recorded run, much faster than real time.
 
 ``shadow analyze DESCRIPTION RECORDING [--baseline B.json] [--sample-rate-hz R] [--robot ID] [--events-json OUT]``
+``shadow analyze DESCRIPTION --database URL | --config FILE  --robot ID --from ISO8601 --to ISO8601 [...]``
 
-RECORDING is JSON lines of wire messages or a CSV (layout in docs/analysis.md). The monitor is built exactly
+RECORDING is JSON lines of wire messages or a CSV (layout in docs/analysis.md). Instead of a file, the raw
+samples the service retained in its store can be analysed over a time range (``--database`` or the service
+``--config``; whole messages overlapping ``[--from, --to)``, in sequence order; the stretches of the range with
+no retained samples are listed; shadow.analysis.stored). The monitor is built exactly
 as ``shadow serve`` builds it (description, baseline or the description's nominal values, default settings at
 the stream's rate) and fed the recording in blocks of messages, so it finds what the live service would have
 found. Lines that cannot be used are skipped and listed (``--strict`` stops at the first one instead). At
@@ -22,13 +26,19 @@ from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
+from sqlalchemy import make_url
+from sqlalchemy.exc import ArgumentError
 
 from shadow.analysis import DEFAULT_BLOCK_MESSAGES, Analysis, analyse
 from shadow.analysis.recording import Recording, read_recording
+from shadow.analysis.stored import gap_rows, parse_time, read_stored_range
 from shadow.cli.serve import load_baseline
+from shadow.config import load_config
 from shadow.errors import ConfigurationError
 from shadow.monitoring import RobotMonitor, default_settings
 from shadow.robots.description import RobotDescription, load_description
+from shadow.store.database import normalise_url
+from shadow.store.repository import SqlStore
 
 PROGRESS_PERIOD_S = 0.25  # the bar is redrawn at most four times a second
 BAR_WIDTH = 30
@@ -49,7 +59,21 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
 def add_common_arguments(parser: argparse.ArgumentParser) -> None:
     """Arguments shared by ``shadow analyze`` and ``shadow report``."""
     parser.add_argument("description", type=Path, metavar="DESCRIPTION", help="robot description (TOML, schema 1)")
-    parser.add_argument("recording", type=Path, metavar="RECORDING", help="JSON lines of wire messages, or CSV")
+    parser.add_argument(
+        "recording",
+        type=Path,
+        nargs="?",
+        metavar="RECORDING",
+        help="JSON lines of wire messages, or CSV (or give a stored range instead: --database/--config)",
+    )
+    stored = parser.add_argument_group("a stored time range instead of a recording")
+    where = stored.add_mutually_exclusive_group()
+    where.add_argument("--database", metavar="URL", help="the store's URL (sqlite:///shadow.db, postgresql://...)")
+    where.add_argument(
+        "--config", type=Path, metavar="FILE", help="the service configuration: its database url and raw retention"
+    )
+    stored.add_argument("--from", dest="range_from", metavar="ISO8601", help="start of the range (no offset: UTC)")
+    stored.add_argument("--to", dest="range_to", metavar="ISO8601", help="end of the range, exclusive (no offset: UTC)")
     parser.add_argument("--baseline", type=Path, metavar="B.json", help="commissioning baseline (shadow commission)")
     parser.add_argument(
         "--sample-rate-hz",
@@ -58,7 +82,9 @@ def add_common_arguments(parser: argparse.ArgumentParser) -> None:
         metavar="R",
         help="nominal stream rate for the false-alarm bound (default: the recording's median rate)",
     )
-    parser.add_argument("--robot", metavar="ID", help="robot id to analyse (default: the description's name)")
+    parser.add_argument(
+        "--robot", metavar="ID", help="robot id to analyse (default: the description's name; a stored range needs it)"
+    )
     parser.add_argument("--strict", action="store_true", help="stop at the first unusable line instead of skipping")
     parser.add_argument(
         "--progress", action="store_true", help="show the progress bar even when stderr is not a terminal"
@@ -138,16 +164,70 @@ def build_monitor(
     return RobotMonitor(recording.robot_id, description, load_baseline(baseline_path), settings)
 
 
+def read_source(args: argparse.Namespace, description: RobotDescription) -> Recording:
+    """The recording file, or the stored range of ``--database``/``--config``, ``--robot``, ``--from``, ``--to``."""
+    from_store = args.database is not None or args.config is not None
+    range_given = args.range_from is not None or args.range_to is not None
+    if args.recording is not None:
+        if from_store or range_given:
+            raise ConfigurationError(
+                "give either a RECORDING file or a stored range (--database or --config with --from and --to), not both"
+            )
+        return read_recording(args.recording, description, robot_id=args.robot, strict=args.strict)
+    if not from_store:
+        raise ConfigurationError("nothing to analyse: give a RECORDING file, or --database/--config with a range")
+    missing = [o for o, v in (("--robot", args.robot), ("--from", args.range_from), ("--to", args.range_to)) if not v]
+    if missing:
+        raise ConfigurationError(
+            f"a stored range needs {', '.join(missing)} (robot id site/cell/robot, ISO 8601 times)"
+        )
+    start_s = parse_time("--from", args.range_from)
+    end_s = parse_time("--to", args.range_to)
+    retention: float | None = None
+    url = args.database
+    if args.config is not None:
+        config = load_config(args.config)
+        url, retention = config.database_url, config.raw_retention_s
+    store = open_store_for_reading(url)
+    try:
+        return read_stored_range(
+            store,
+            description,
+            robot_id=args.robot,
+            start_s=start_s,
+            end_s=end_s,
+            strict=args.strict,
+            configured_retention_s=retention,
+        )
+    finally:
+        store.close()
+
+
+def open_store_for_reading(url: str) -> SqlStore:
+    """The store at ``url`` without migrating it (analysis only reads); a missing SQLite file is an error."""
+    try:
+        parsed = make_url(normalise_url(url))
+    except ArgumentError:
+        raise ConfigurationError(
+            "--database: not a database URL (expected sqlite:///file.db or postgresql://user@host/db)"
+        ) from None
+    database = parsed.database
+    if parsed.get_backend_name() == "sqlite" and database and database != ":memory:" and not Path(database).exists():
+        raise ConfigurationError(f"--database: no SQLite database at {database} (is this the service's store?)")
+    return SqlStore(url, migrate_schema=False)
+
+
 def run_analysis(args: argparse.Namespace) -> tuple[RobotDescription, RobotMonitor, Analysis]:
     """Read, build and analyse, with the progress bar if wanted (shared with ``shadow report``)."""
     if args.block_messages < 1:
         raise ConfigurationError(f"--block-messages: must be >= 1, got {args.block_messages}")
     description = load_description(args.description)
-    recording = read_recording(args.recording, description, robot_id=args.robot, strict=args.strict)
+    recording = read_source(args, description)
     for skip in recording.skipped[:20]:
-        print(f"shadow {args.command}: skipped {args.recording}: {skip}", file=sys.stderr)
+        print(f"shadow {args.command}: skipped {recording.origin}: {skip}", file=sys.stderr)
     if len(recording.skipped) > 20:
-        print(f"shadow {args.command}: ... {len(recording.skipped) - 20} more lines skipped", file=sys.stderr)
+        what = "messages" if recording.layout == "store" else "lines"
+        print(f"shadow {args.command}: ... {len(recording.skipped) - 20} more {what} skipped", file=sys.stderr)
     monitor = build_monitor(description, recording, args.baseline, args.sample_rate_hz)
     show = args.progress or sys.stderr.isatty()
     bar = ProgressBar(sys.stderr) if show else None
@@ -173,8 +253,19 @@ def summary_lines(description: RobotDescription, analysis: Analysis) -> list[str
         f"analysed in {analysis.elapsed_s:.2f} s: {analysis.samples_per_s:,.0f} samples/s "
         f"({rec.duration_s / analysis.elapsed_s if analysis.elapsed_s > 0 else float('inf'):.1f} x real time)",
     ]
+    if rec.layout == "store":
+        lines.insert(1, f"source: {rec.origin}")
     if rec.skipped:
-        lines.append(f"skipped lines: {len(rec.skipped)} (listed on stderr)")
+        what = "messages" if rec.layout == "store" else "lines"
+        lines.append(f"skipped {what}: {len(rec.skipped)} (listed on stderr)")
+    if rec.gaps:
+        lines.append(
+            f"not retained in the range: {len(rec.gaps)} stretches, {sum(g.duration_s for g in rec.gaps):.3f} s"
+        )
+        for g in rec.gaps[:20]:
+            lines.append(f"  {iso(g.start_s)} .. {iso(g.end_s)}  {g.duration_s:10.3f} s  {g.reason}")
+        if len(rec.gaps) > 20:
+            lines.append(f"  ... and {len(rec.gaps) - 20} more")
     if rec.other_robots:
         lines.append(f"other robots in the file, not analysed: {', '.join(rec.other_robots)}")
     gaps = analysis.results.unmonitored
@@ -223,11 +314,13 @@ def events_document(analysis: Analysis) -> dict[str, Any]:
         out.append(row)
     return {
         "robot": rec.robot_id,
-        "recording": str(rec.path),
+        "recording": rec.origin if rec.layout == "store" else str(rec.path),
+        "source_layout": rec.layout,
         "samples": analysis.n_samples,
         "start_utc": iso(rec.start_s),
         "end_utc": iso(rec.end_s),
-        "skipped_lines": [{"line": s.line, "reason": s.reason} for s in rec.skipped],
+        "skipped_lines": [{s.where: s.line, "reason": s.reason} for s in rec.skipped],
+        "not_retained": gap_rows(rec.gaps),
         "events": out,
     }
 

@@ -1,11 +1,13 @@
 """``shadow report``: analyse a recorded run and write a self-contained HTML report (optionally PDF).
 
 ``shadow report DESCRIPTION RECORDING -o report.html [--baseline B.json] [--pdf]``
+``shadow report DESCRIPTION --database URL | --config FILE --robot ID --from ISO8601 --to ISO8601 -o report.html``
 
-The analysis is that of ``shadow analyze``; the page holds the health summary, the validation view (measured
-against computed efforts with RMS, NRMS and correlation), payload and friction trends with +-2 std bands and
-every event with its evidence, contact force and pose (layout in docs/analysis.md). Plots are embedded, so the
-file opens anywhere without a network. ``--pdf`` also prints it to PDF next to it when a headless Chromium is
+The analysis is that of ``shadow analyze`` (a recording file, or a stored range with the same options); the
+page holds the health summary, the validation view (measured against computed efforts with RMS, NRMS and
+correlation), payload and friction trends with +-2 std bands and every event with its evidence, contact force and
+pose (layout in docs/analysis.md). Plots are embedded, so the file opens anywhere without a network. ``--pdf``
+also prints it to PDF next to it when a headless Chromium is
 installed. Advisory only: nothing is sent to a controller.
 """
 
@@ -22,7 +24,7 @@ from shadow.errors import ConfigurationError
 def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = commands.add_parser(
         "report",
-        help="write an HTML report of a recorded run",
+        help="write an HTML report of a recorded run or a stored range",
         description=__doc__,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
