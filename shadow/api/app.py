@@ -12,6 +12,10 @@ Routes (all GET; HEAD answers the same without a body; every other method gets 4
     /api/v1/status                                         service status: broker sessions, lag, queues, dead letters
     /metrics                                               Prometheus text format
     /health/live                                           liveness probe (no token needed)
+
+With bearer tokens configured, every route above but the liveness probe needs ``Authorization: Bearer``;
+the dashboard's page shells and static files (shadow.api.pages) do not, and its script signs in
+(shadow.api.security explains how and why).
 """
 
 from __future__ import annotations
@@ -343,8 +347,10 @@ def create_app(
         version=__version__,
         description="Read-only health indicators of parallel robots. " + out.ADVISORY_NOTICE,
     )
+    guard = guard or GuardSettings()
     app.state.store = store
     app.state.status_provider = status_provider
+    app.state.tokens_required = bool(guard.token_digests)  # the page shells then read nothing (shadow.api.pages)
     app.include_router(router)
     app.include_router(pages_router)
 
@@ -386,7 +392,7 @@ def create_app(
         body = render()
         return PlainTextResponse(body.decode(), media_type="text/plain; version=0.0.4; charset=utf-8")
 
-    return ReadOnlyGuard(app, guard or GuardSettings())
+    return ReadOnlyGuard(app, guard)
 
 
 def openapi_document(app: Any) -> dict[str, Any]:

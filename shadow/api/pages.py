@@ -12,6 +12,15 @@ what it shows in ``data-*`` attributes; ``dashboard.js`` fills it from the JSON 
 draws the plots as inline SVG. Nothing is fetched from outside the service (no CDN, no web fonts), and the
 Content-Security-Policy header forbids it, so the dashboard works on a plant network without internet.
 
+With bearer tokens configured (the API off loopback, :mod:`shadow.api.security`) the page shells and the
+static files are served without a token - a browser cannot attach one to a navigation - and the data
+routes still need one. The shells then say nothing the URL does not: no store lookup, so no robot's or
+event's existence, kind or name leaks to someone without a token (an unknown robot or event is reported
+by the script, from the API's 404, once signed in). ``dashboard.js`` signs in: on a 401 it draws a token
+field, keeps the token in the tab's ``sessionStorage`` and sends it as ``Authorization: Bearer`` on its own
+requests (the reasons for this choice are in :mod:`shadow.api.security`). Without tokens (loopback) the
+shells read the store as before: an unknown robot or event answers a 404 page, an event page names its kind.
+
 Include in the application with ``app.include_router(pages_router)``.
 """
 
@@ -102,6 +111,11 @@ def _store(request: Request) -> Any:
     return request.app.state.store
 
 
+def _shells_read_store(request: Request) -> bool:
+    """False when the API needs a token: the shells are served without one, so they must not read the store."""
+    return not getattr(request.app.state, "tokens_required", False)
+
+
 @pages_router.get("/", response_class=HTMLResponse)
 def overview_page() -> HTMLResponse:
     return _page(render_page(title="cell overview", page="overview", heading="Cell overview"))
@@ -113,7 +127,7 @@ def robot_page(site: str, cell: str, robot: str, request: Request) -> HTMLRespon
         rid = str(RobotAddress(site, cell, robot))
     except RejectedMessageError:
         return _not_found("this robot address")
-    if not any(r["robot_id"] == rid for r in _store(request).robots()):
+    if _shells_read_store(request) and not any(r["robot_id"] == rid for r in _store(request).robots()):
         return _not_found(f"robot {rid}")
     api = "/api/v1/robots/" + "/".join(quote(p, safe="") for p in (site, cell, robot))
     return _page(render_page(title=rid, page="robot", data={"robot": rid, "api": api}, heading=f"Robot {rid}"))
@@ -121,10 +135,12 @@ def robot_page(site: str, cell: str, robot: str, request: Request) -> HTMLRespon
 
 @pages_router.get("/event/{event_id}", response_class=HTMLResponse)
 def event_page(event_id: int, request: Request) -> HTMLResponse:
-    row = _store(request).event(event_id)
-    if row is None:
-        return _not_found(f"event {event_id}")
-    heading = f"Event {event_id}: {row['kind']} on {row['robot_id']}"
+    heading = f"Event {event_id}"  # the script completes it from the API as "Event N: kind on robot"
+    if _shells_read_store(request):
+        row = _store(request).event(event_id)
+        if row is None:
+            return _not_found(f"event {event_id}")
+        heading = f"Event {event_id}: {row['kind']} on {row['robot_id']}"
     return _page(render_page(title=f"event {event_id}", page="event", data={"event": str(event_id)}, heading=heading))
 
 

@@ -7,6 +7,32 @@ without a body.
 Tokens: the service stores only SHA-256 digests of its bearer tokens (``sha256:<hex>``), compared in
 constant time; a token found in a log line would still have to be guessed from its digest, and the
 log never holds one (the ``Authorization`` header is never logged).
+
+What needs a token, when tokens are configured: every data route (``/api/v1/...``, ``/metrics``, the
+OpenAPI document). What does not: the liveness probe, and the dashboard's page shells and static assets
+(:data:`OPEN_PATHS`, :data:`OPEN_PREFIXES`). Those carry nothing from the store in that mode
+(:mod:`shadow.api.pages` renders them from the URL alone), so a person without a token sees only the
+sign-in form the dashboard script draws.
+
+How the dashboard signs in (the choice, and why): the person pastes a token into a field the page's own
+script draws; the script keeps it in the tab's ``sessionStorage`` and sends it as ``Authorization: Bearer``
+on its own ``fetch`` calls to the data routes. Nothing else changes on the server:
+
+* the guard still answers every method but GET and HEAD with 405 - there is no sign-in route to POST to,
+  no session to create, nothing stored on the server;
+* no cookie: the browser never attaches the token to a request by itself, so another site cannot make the
+  browser send an authenticated request (no CSRF surface), and a sign-out is just forgetting it;
+* the token never enters a URL (no ``?token=``), so it cannot end up in an access log, the browser
+  history or a ``Referer``; the input has no ``name`` and form submission is forbidden by the pages'
+  Content-Security-Policy (``form-action 'none'``), so even a failed script cannot put it into one;
+* ``sessionStorage`` lives as long as the tab and is not shared with other tabs or written for later
+  sessions as ``localStorage`` is; a script injected into the page could read it, which the pages'
+  policy (``script-src 'self'``, no inline script) and the text-only DOM updates of ``dashboard.js`` keep out.
+
+Rejected: HTTP Basic (the browser caches and re-sends the credentials on its own, with no sign-out),
+a token in the query string (logged everywhere), a cookie set by a sign-in route (needs a non-GET route
+or a token in a URL, and brings CSRF back). Off loopback, put TLS in front of the API: a bearer token
+travels in clear over plain HTTP (deploy/).
 """
 
 from __future__ import annotations
@@ -28,7 +54,23 @@ Send = Callable[[Message], Awaitable[None]]
 ASGIApp = Callable[[Scope, Receive, Send], Awaitable[None]]
 
 ALLOWED_METHODS = ("GET", "HEAD")
-OPEN_PATHS = ("/health/live",)  # liveness probes need no token
+OPEN_PATHS = ("/health/live", "/")  # the liveness probe and the overview page's shell need no token
+OPEN_PREFIXES = ("/static/", "/robot/", "/event/")  # dashboard assets and page shells (nothing from the store)
+
+
+def is_open_path(path: str) -> bool:
+    """True for the paths served without a token: :data:`OPEN_PATHS`, or under :data:`OPEN_PREFIXES`.
+
+    A path with an empty, ``.`` or ``..`` segment is never open, whatever it starts with.
+
+    >>> is_open_path("/static/dashboard.js"), is_open_path("/api/v1/robots"), is_open_path("/static/../api/v1/robots")
+    (True, False, False)
+    """
+    if path in OPEN_PATHS:
+        return True
+    if not path.startswith(OPEN_PREFIXES):
+        return False
+    return all(segment not in ("", ".", "..") for segment in path[1:].split("/"))
 
 
 def token_digest(token: str) -> str:
@@ -100,7 +142,7 @@ class ReadOnlyGuard:
         if length > s.max_body_bytes:
             await _json_error(send, 413, "body_too_large", "requests to this API carry no body", [])
             return
-        if s.token_digests and scope.get("path") not in OPEN_PATHS:
+        if s.token_digests and not is_open_path(str(scope.get("path", ""))):
             auth = headers.get(b"authorization", b"").decode("latin-1")
             token = auth[7:] if auth.lower().startswith("bearer ") else ""
             digest = token_digest(token)

@@ -9,6 +9,7 @@ data, the evidence window; screenshots go to the test's temporary directory. CI 
 from __future__ import annotations
 
 import base64
+import logging
 import shutil
 import socket
 import subprocess
@@ -23,7 +24,9 @@ import numpy as np
 import pytest
 import uvicorn
 
+from shadow.api.app import create_app
 from shadow.api.schemas import ADVISORY_NOTICE
+from shadow.api.security import GuardSettings, token_digest
 from shadow.store.repository import SqlStore, StepResults
 from tests.api.test_pages import DELTA, HEXA, fill_scene, with_pages
 from tests.servers import free_loopback_port, wait_for_port
@@ -307,3 +310,124 @@ def test_hexapod_page_uses_leg_force_units(browser: Browser) -> None:
     )
     assert ["Effort residual RMS per actuator [N]", 6] in captions and ["Payload mass [kg]", 1] in captions
     check_common(browser)
+
+
+# ---------------------------------------------------------------------------------------------- with tokens
+
+TOKEN = "plant7-maintenance-4f9c2e"  # invented; the server holds only its digest
+
+
+class LogLines(logging.Handler):
+    """Every formatted log line of the server, to look for the token in."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.DEBUG)
+        self.lines: list[str] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.lines.append(self.format(record))
+
+
+@pytest.fixture(scope="module")
+def guarded_server(scene_store: SqlStore) -> Iterator[tuple[str, LogLines]]:
+    """The application with a bearer token required, under uvicorn with its access log on, on loopback."""
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock.bind(("127.0.0.1", 0))
+    port = sock.getsockname()[1]
+    app = create_app(scene_store, guard=GuardSettings(token_digests=(token_digest(TOKEN),)))
+    config = uvicorn.Config(app, log_level="info", access_log=True, lifespan="off")  # configures logging now
+    lines = LogLines()
+    for name in ("uvicorn", "uvicorn.access", "uvicorn.error", "shadow"):
+        logging.getLogger(name).addHandler(lines)
+    server = uvicorn.Server(config)
+    thread = threading.Thread(target=server.run, kwargs={"sockets": [sock]}, daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 10.0
+    while not server.started and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert server.started, "uvicorn did not start"
+    yield f"http://127.0.0.1:{port}", lines
+    server.should_exit = True
+    thread.join(timeout=10.0)
+    sock.close()
+    for name in ("uvicorn", "uvicorn.access", "uvicorn.error", "shadow"):
+        logging.getLogger(name).removeHandler(lines)
+
+
+def type_into(browser: Browser, css: str, text: str) -> None:
+    """Real key strokes into an element (WebDriver element send-keys), then nothing else."""
+    element = browser.command("POST", "/element", {"using": "css selector", "value": css})
+    key = next(iter(element))  # the W3C element reference key
+    browser.command("POST", f"/element/{element[key]}/value", {"text": text})
+
+
+def click(browser: Browser, css: str) -> None:
+    element = browser.command("POST", "/element", {"using": "css selector", "value": css})
+    browser.command("POST", f"/element/{element[next(iter(element))]}/click", {})
+
+
+def test_signing_in_with_a_token_shows_the_data(
+    browser: Browser, guarded_server: tuple[str, LogLines], scene_store: SqlStore, shots: Path
+) -> None:
+    base, server_log = guarded_server
+    b = Browser(browser.http, browser.session, base)  # same browser, another origin: its own sessionStorage
+    b.open("/")
+    b.wait_until("return document.getElementById('content').dataset.ready === 'sign-in'", what="sign-in form drawn")
+    text = b.run("return document.getElementById('content').innerText")
+    assert "Sign in to read the data" in text and DELTA not in text and "hexa-b" not in text
+    assert b.run("return document.querySelectorAll('article.robot-card').length") == 0
+    assert b.run("return document.querySelector('#token-field').type") == "password"
+    b.screenshot(shots / "sign-in.png")
+
+    type_into(b, "#token-field", "not-the-token")
+    click(b, "form.sign-in button[type=submit]")
+    b.wait_until(
+        "return document.querySelector('form.sign-in .problem').innerText.includes('refused')",
+        what="a wrong token is refused",
+    )
+    assert b.run("return window.sessionStorage.length") == 0  # a refused token is not kept
+
+    type_into(b, "#token-field", TOKEN)
+    click(b, "form.sign-in button[type=submit]")
+    b.wait_until("return document.getElementById('content').dataset.ready === 'yes'", what="data after signing in")
+    cards = b.run(
+        "return [...document.querySelectorAll('article.robot-card')].map(c => [c.dataset.robot, c.dataset.state])"
+    )
+    assert cards == [[DELTA, "act"], [HEXA, scene_state(scene_store, HEXA)]]
+    assert b.run("return document.querySelector('button.sign-out') !== null")
+    assert b.run("return window.sessionStorage.getItem('shadow.bearer-token')") == TOKEN
+    assert b.run("return [window.localStorage.length, document.cookie]") == [0, ""]
+
+    # the other pages of the tab use the kept token: no second sign-in
+    event_id = scene_store.events(robot_id=DELTA, kind="collision")[0]["event_id"]
+    b.open(f"/event/{event_id}")
+    b.wait_ready()
+    assert b.run("return document.querySelector('h1').innerText") == f"Event {event_id}: collision on {DELTA}"
+    assert "unexpected contact on actuator 1" in b.run("return document.getElementById('content').innerText")
+    b.open(f"/robot/{DELTA}")
+    b.wait_ready()
+    assert b.run("return document.querySelectorAll('figure.plot-box svg.plot').length") >= 4
+    b.screenshot(shots / "robot-signed-in.png")
+    b.open("/robot/riverside/cell-2/nobody")  # its shell is served as any other; the API answers 404
+    b.wait_ready()
+    assert b.run("return document.querySelector('h1').innerText") == "robot riverside/cell-2/nobody is not known here"
+    loaded = b.run("return performance.getEntriesByType('resource').map(e => e.name)")
+    assert loaded and all(u.startswith(base + "/") and TOKEN not in u for u in loaded), loaded
+    assert TOKEN not in b.run("return window.location.href + document.referrer + document.documentElement.outerHTML")
+
+    # sign out: the token is forgotten and the data is gone from the page
+    click(b, "button.sign-out")
+    b.wait_until("return !!document.querySelector('form.sign-in')", what="sign-in form after signing out")
+    assert b.run("return window.sessionStorage.length") == 0
+    assert b.run("return document.querySelectorAll('figure.plot-box').length") == 0
+
+    errors = [e for e in browser.console() if e.get("level") == "SEVERE"]
+    messages = [str(e.get("message", "")) for e in errors]  # the refusals before signing in, and the unknown robot
+    assert all("status of 401" in m or ("status of 404" in m and "/nobody" in m) for m in messages), messages
+    assert server_log.lines, "the server's access log must be on for this check"
+    assert any("/api/v1/robots" in line for line in server_log.lines)
+    assert not [line for line in server_log.lines if TOKEN in line]
+
+
+def scene_state(store: SqlStore, robot_id: str) -> str:
+    return next(h["state"] for h in store.latest_health(robot_id) if h["scope"] == "robot")

@@ -1,6 +1,11 @@
 // shadow dashboard: fills the pages from the read-only JSON API and draws the plots as inline SVG.
 // Plain JavaScript, no framework and nothing fetched from outside the service. Data is always put into
 // the page as text (textContent), never as HTML.
+//
+// Signing in, when the service requires bearer tokens (shadow/api/security.py says why it is done so):
+// on a 401 the page draws a token field; the token is tried on the API, kept in this tab's
+// sessionStorage only, and sent as "Authorization: Bearer" on this script's own requests. It never goes
+// into a URL, a cookie, localStorage or the console; "sign out" forgets it.
 "use strict";
 
 (() => {
@@ -51,13 +56,44 @@
   }
 
   class ApiProblem extends Error {}
+  class SignInNeeded extends ApiProblem {}
+
+  // ---- the bearer token: this tab's sessionStorage, nowhere else ------------------------------
+  const TOKEN_KEY = "shadow.bearer-token";
+  function storedToken() {
+    try {
+      return window.sessionStorage.getItem(TOKEN_KEY) || "";
+    } catch (_) {
+      return ""; // storage refused (privacy settings): every request goes without a token
+    }
+  }
+  function keepToken(token) {
+    try {
+      if (token) window.sessionStorage.setItem(TOKEN_KEY, token);
+      else window.sessionStorage.removeItem(TOKEN_KEY);
+    } catch (_) {
+      /* nothing kept: the person signs in again on the next page */
+    }
+  }
+
+  function request(url, token) {
+    const headers = { accept: "application/json" };
+    if (token) headers.authorization = `Bearer ${token}`;
+    // same origin only (the API serves the page), no cookie, no referrer: the header is the only credential
+    return fetch(url, { cache: "no-store", headers, credentials: "omit", referrerPolicy: "no-referrer" });
+  }
 
   async function getJson(url) {
     let answer;
+    const token = storedToken();
     try {
-      answer = await fetch(url, { cache: "no-store", headers: { accept: "application/json" } });
+      answer = await request(url, token);
     } catch (err) {
       throw new ApiProblem(`the service did not answer (${err.message})`);
+    }
+    if (answer.status === 401) {
+      if (token) keepToken(""); // refused now (withdrawn or replaced): forget it
+      throw new SignInNeeded(token ? "the service no longer accepts the token of this tab" : "");
     }
     let body = null;
     try {
@@ -67,7 +103,9 @@
     }
     if (!answer.ok) {
       const detail = body && body.detail ? body.detail : answer.statusText;
-      throw new ApiProblem(`${answer.status} ${detail}`);
+      const problem = new ApiProblem(`${answer.status} ${detail}`);
+      problem.status = answer.status;
+      throw problem;
     }
     return body;
   }
@@ -450,6 +488,81 @@
     if (loading) loading.remove();
   }
 
+  // ---- sign-in ---------------------------------------------------------------------------------
+  let signingIn = false;
+
+  function showSignIn(reason) {
+    signingIn = true;
+    markUpdated(false, "sign-in needed");
+    const main = content();
+    const existing = main.querySelector("form.sign-in");
+    if (existing) {
+      existing.querySelector(".problem").textContent = reason || "";
+      return;
+    }
+    // no name attribute: even a submitted form could not carry the token into a URL
+    const input = el("input", { id: "token-field", type: "password", autocomplete: "off", spellcheck: "false", required: true });
+    const problem = el("p", { cls: "problem", role: "alert", "aria-live": "polite", text: reason || "" });
+    const form = el(
+      "form",
+      { cls: "sign-in", "aria-label": "sign in", autocomplete: "off", novalidate: true },
+      el("h2", { text: "Sign in to read the data" }),
+      el("p", {
+        text:
+          "This service asks for an access token before it shows any data. Paste the token you were given. " +
+          "It stays in this browser tab only and is sent with this page's requests to the service; " +
+          "closing the tab or choosing sign out forgets it.",
+      }),
+      el("label", { for: "token-field", text: "Access token" }),
+      input,
+      el("button", { type: "submit", text: "Sign in" }),
+      problem,
+    );
+    form.addEventListener("submit", async (ev) => {
+      ev.preventDefault();
+      const token = input.value.trim();
+      input.value = "";
+      if (!token) {
+        problem.textContent = "Paste a token first.";
+        return;
+      }
+      problem.textContent = "Checking the token…";
+      let answer;
+      try {
+        answer = await request(`${API}/robots`, token); // the cheapest data route; read-only like all of them
+      } catch (err) {
+        problem.textContent = `The service did not answer (${err.message}).`;
+        return;
+      }
+      if (answer.status === 401) {
+        problem.textContent = "The service refused this token.";
+        return;
+      }
+      keepToken(token);
+      form.remove();
+      signingIn = false;
+      showSignOut();
+      const loading = el("p", { cls: "loading", text: "Reading the store…" });
+      replaceBody([loading]);
+      delete content().dataset.ready; // being filled again
+      refreshNow();
+    });
+    replaceBody([form]);
+    input.focus();
+  }
+
+  function showSignOut() {
+    const bar = document.querySelector("header.topbar");
+    if (!bar || bar.querySelector("button.sign-out") || !storedToken()) return;
+    const button = el("button", { type: "button", cls: "sign-out", text: "sign out" });
+    button.addEventListener("click", () => {
+      keepToken("");
+      button.remove();
+      showSignIn("Signed out: the token is forgotten in this tab.");
+    });
+    bar.append(button);
+  }
+
   const robotHref = (rid) => `/robot/${rid.split("/").map(encodeURIComponent).join("/")}`;
   const effortUnit = (family) => (family === "hexapod" ? "N" : "N·m");
   const viscousUnit = (family) => (family === "hexapod" ? "N·s/m" : "N·m·s/rad");
@@ -703,6 +816,7 @@
     const id = main.dataset.event;
     const [e, list] = await Promise.all([getJson(`${API}/events/${encodeURIComponent(id)}`), getJson(`${API}/robots`)]);
     const info = list.robots.find((r) => r.robot_id === e.robot_id) || { family: "delta" };
+    main.querySelector("h1").textContent = `Event ${e.event_id}: ${e.kind} on ${e.robot_id}`; // the shell may say less
     const t0 = ms(e.start);
     const facts = el(
       "dl",
@@ -762,7 +876,7 @@
   let busy = false;
   async function refreshNow() {
     const main = content();
-    if (busy || !main) return;
+    if (busy || signingIn || !main) return;
     busy = true;
     try {
       if (main.dataset.page === "overview") await overview();
@@ -775,8 +889,21 @@
       }
       main.dataset.ready = "yes";
     } catch (err) {
-      showProblem(err);
-      main.dataset.ready = "problem";
+      if (err instanceof SignInNeeded) {
+        showSignIn(err.message);
+        main.dataset.ready = "sign-in";
+      } else if (err.status === 404 && (main.dataset.page === "robot" || main.dataset.page === "event")) {
+        // the shell did not look (it is served without a token); the API says the robot or event is unknown
+        const what = main.dataset.page === "robot" ? `robot ${main.dataset.robot}` : `event ${main.dataset.event}`;
+        main.querySelector("h1").textContent = `${what} is not known here`;
+        replaceBody([]);
+        markUpdated(true);
+        main.dataset.page = "missing"; // nothing to refresh
+        main.dataset.ready = "yes";
+      } else {
+        showProblem(err);
+        main.dataset.ready = "problem";
+      }
     } finally {
       busy = false;
     }
@@ -785,6 +912,7 @@
   function start() {
     const main = content();
     if (!main) return;
+    showSignOut();
     refreshNow();
     const period = Number(main.dataset.refreshS || 5) * 1000;
     if (main.dataset.page === "overview") setInterval(refreshNow, period);
