@@ -20,6 +20,11 @@ Layout (every key documented in docs/service-config.md)::
     port = 8470
     token_digests = ["sha256:..."]   # shadow.api.security.token_digest(token); tokens themselves are never stored
 
+    [pool]                       # several workers on one PostgreSQL (deploy/scale-out.md); ignored with SQLite
+    worker = "cell3-a"           # this worker's name, unique in the pool; --worker NAME wins; default: host name
+    lease_s = 10                 # a dead worker's robots are taken over this long after its last renewal
+    heartbeat_s = 2              # renew and rebalance this often; at most lease_s / 2
+
     [[robots]]
     site = "northfield"
     cell = "line3"
@@ -34,6 +39,7 @@ Relative paths are relative to the configuration file.
 from __future__ import annotations
 
 import ipaddress
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -46,6 +52,9 @@ from shadow.ingest.topics import DEFAULT_PREFIX, RobotAddress, validate_segment
 
 DEFAULT_API_PORT = 8470
 DEFAULT_DATABASE_URL = "sqlite:///shadow.db"
+DEFAULT_LEASE_S = 10.0
+DEFAULT_HEARTBEAT_S = 2.0
+_WORKER_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,99}")
 
 
 @dataclass(frozen=True, slots=True)
@@ -76,10 +85,18 @@ class ServiceConfig:
     api_allow_unauthenticated_remote: bool = False  # binding off loopback without tokens needs this set on purpose
     api_rate_per_s: float = 50.0
     robots: tuple[RobotEntry, ...] = ()
+    worker: str | None = None  # name in the worker pool (PostgreSQL only); None: the host name
+    lease_s: float = DEFAULT_LEASE_S
+    heartbeat_s: float = DEFAULT_HEARTBEAT_S
     source: str = "<defaults>"
 
+    @property
+    def pooled(self) -> bool:
+        """True when the store is PostgreSQL: the service then joins the worker pool."""
+        return self.database_url.startswith(("postgresql", "postgres://"))
 
-_SECTIONS = {"mqtt", "database", "api", "robots"}
+
+_SECTIONS = {"mqtt", "database", "api", "pool", "robots"}
 _MQTT_KEYS = {
     "host", "port", "protocol", "username", "password_file", "tls_ca_file", "tls_cert_file", "tls_key_file",
     "keepalive_s", "session_expiry_s", "reconnect_min_delay_s", "reconnect_max_delay_s", "client_id_prefix",
@@ -87,6 +104,7 @@ _MQTT_KEYS = {
 }  # fmt: skip
 _DATABASE_KEYS = {"url", "raw_retention_s"}
 _API_KEYS = {"host", "port", "token_digests", "allow_unauthenticated_remote", "rate_per_s"}
+_POOL_KEYS = {"worker", "lease_s", "heartbeat_s"}
 _ROBOT_KEYS = {"site", "cell", "robot", "description", "baseline", "sample_rate_hz"}
 
 
@@ -166,6 +184,14 @@ def _build(doc: dict[str, Any], base: Path, source: str) -> ServiceConfig:
             "set api.allow_unauthenticated_remote = true only if another layer protects the port"
         )
 
+    pool = doc.get("pool", {})
+    _unknown("pool", pool, _POOL_KEYS)
+    worker = pool.get("worker")
+    if worker is not None:
+        worker = check_worker_name(worker, "pool.worker")
+    lease_s, heartbeat_s = pool.get("lease_s", DEFAULT_LEASE_S), pool.get("heartbeat_s", DEFAULT_HEARTBEAT_S)
+    check_pool_timing(lease_s, heartbeat_s)
+
     robots = []
     seen: set[str] = set()
     for i, entry in enumerate(doc.get("robots", [])):
@@ -208,8 +234,29 @@ def _build(doc: dict[str, Any], base: Path, source: str) -> ServiceConfig:
         api_allow_unauthenticated_remote=allow_open,
         api_rate_per_s=float(api.get("rate_per_s", 50.0)),
         robots=tuple(robots),
+        worker=worker,
+        lease_s=float(lease_s),
+        heartbeat_s=float(heartbeat_s),
         source=source,
     )
+
+
+def check_worker_name(name: Any, where: str = "worker") -> str:
+    """A worker name: 1-100 letters, digits, '.', '_' or '-', starting with a letter or digit."""
+    if not isinstance(name, str) or not _WORKER_NAME.fullmatch(name):
+        raise ConfigurationError(
+            f"{where}: {name!r} is not a worker name (1-100 of A-Z a-z 0-9 . _ -, starting with a letter or digit)"
+        )
+    return name
+
+
+def check_pool_timing(lease_s: Any, heartbeat_s: Any) -> None:
+    """``lease_s`` > 0 and 0 < ``heartbeat_s`` <= ``lease_s`` / 2, so one late heartbeat does not lose a lease."""
+    for key, value in (("pool.lease_s", lease_s), ("pool.heartbeat_s", heartbeat_s)):
+        if isinstance(value, bool) or not isinstance(value, int | float) or not value > 0:
+            raise ConfigurationError(f"{key}: must be a number > 0, got {value!r}")
+    if heartbeat_s * 2 > lease_s:
+        raise ConfigurationError(f"pool.heartbeat_s: must be at most lease_s / 2 = {lease_s / 2}, got {heartbeat_s}")
 
 
 def is_loopback(host: str) -> bool:

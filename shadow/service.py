@@ -13,6 +13,12 @@ Only then are the step's messages acknowledged to the broker, in arrival order. 
   robot's messages, then stops taking more, the full inbox holds the network thread back and the
   broker keeps the rest (its queue is the bound); the service writes the results it kept in memory
   once the database is back. The outage is counted in :class:`ServiceStatus`.
+
+In a worker pool (several services on one PostgreSQL, :mod:`shadow.pool`) a pipeline carries the
+:class:`~shadow.store.repository.Fence` of its robot's lease and every write checks it; a refused write
+(:class:`~shadow.store.repository.LeaseLostError`) drops the step, acknowledges nothing and marks the
+pipeline ``lease_lost``, so the service stops stepping it and the pool takes it away. Robots come and
+go while the service runs (:meth:`Service.attach`, :meth:`Service.detach`).
 """
 
 from __future__ import annotations
@@ -44,7 +50,7 @@ from shadow.ingest.wire import (
     decode_message,
     encode_binary,
 )
-from shadow.store.repository import Checkpoint, SqlStore, StepResults, StoreUnavailableError
+from shadow.store.repository import Checkpoint, Fence, LeaseLostError, SqlStore, StepResults, StoreUnavailableError
 
 log = logging.getLogger(__name__)
 
@@ -95,6 +101,7 @@ class RobotStatus:
     last_sample_time_s: float | None = None
     last_step_at_s: float | None = None
     unwritten_steps: int = 0
+    fenced_steps: int = 0  # writes refused because the robot's lease had gone to another worker
 
 
 @dataclass
@@ -121,8 +128,12 @@ class RobotPipeline:
         max_messages_per_step: int = 50,
         max_held_messages: int = 1000,
         reorder_window: int = 4,
+        fence: Fence | None = None,
     ) -> None:
         self.address = address
+        self.fence = fence
+        self.lease_lost = False  # a fenced write was refused: the robot belongs to another worker now
+        self.detached = False  # taken out of the service (Service.detach)
         self.robot_id = str(address)
         self.monitor = monitor
         self.store = store
@@ -181,7 +192,19 @@ class RobotPipeline:
             results = self._unwritten
         self._unacknowledged.extend(taken)
         try:
-            self.store.write_step(results)
+            if self.fence is None:
+                self.store.write_step(results)
+            else:
+                self.store.write_step(results, fence=self.fence)
+        except LeaseLostError as exc:
+            # another worker owns the robot now: it resumes from the last checkpoint written under a valid
+            # lease, and the broker gives it every message not acknowledged here
+            log.warning("robot %s: %s; dropping this step and the robot", self.robot_id, exc)
+            self.status.fenced_steps += 1
+            self.lease_lost = True
+            self._unwritten = None
+            self._unacknowledged.clear()
+            return len(taken)
         except StoreUnavailableError as exc:
             if self._unwritten is None:
                 log.warning("robot %s: store unavailable, holding results and acknowledgements: %s", self.robot_id, exc)
@@ -315,13 +338,17 @@ class Service:
         self.raw_retention_s = raw_retention_s
         self.idle_sleep_s = idle_sleep_s
         self.status = ServiceStatus({p.robot_id: p.status for p in self.pipelines})
+        self._changes = threading.Lock()  # attach/detach; the lists are replaced, never changed in place
+        self._started = False
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._last_prune_s = 0.0
 
     def start(self) -> None:
-        for sub in self.subscriptions:
-            sub.start(wait_s=None)  # paho keeps trying with back-off; a down broker is not fatal
+        with self._changes:
+            self._started = True
+            for sub in self.subscriptions:
+                sub.start(wait_s=None)  # paho keeps trying with back-off; a down broker is not fatal
         self._thread = threading.Thread(target=self._run, name="shadow-pipeline", daemon=True)
         self._thread.start()
 
@@ -332,19 +359,62 @@ class Service:
         for sub in self.subscriptions:
             sub.stop()
 
+    def attach(self, pipeline: RobotPipeline, subscription: RobotSubscription | None = None) -> None:
+        """Start following one more robot (its session connects at once when the service runs)."""
+        with self._changes:
+            if any(p.robot_id == pipeline.robot_id for p in self.pipelines):
+                raise ShadowError(f"robot {pipeline.robot_id} is followed already")
+            if subscription is not None:
+                if self._started:
+                    subscription.start(wait_s=None)
+                self.subscriptions = [*self.subscriptions, subscription]
+            self.status.robots = {**self.status.robots, pipeline.robot_id: pipeline.status}
+            self.pipelines = [*self.pipelines, pipeline]
+
+    def detach(self, *robot_ids: str, timeout_s: float = 10.0) -> list[RobotPipeline]:
+        """Stop following robots: their sessions disconnect (the broker keeps them and their messages).
+
+        The sessions are stopped in parallel (a session waiting to reconnect takes up to its back-off to
+        stop) and waited for, up to ``timeout_s``. A step of a detached robot already under way may still
+        try to write; with a fence that write is refused once the lease is released, and without one it is
+        a step the service had taken anyway.
+        """
+        ids = set(robot_ids)
+        with self._changes:
+            gone = [p for p in self.pipelines if p.robot_id in ids]
+            subs = [s for s in self.subscriptions if s.robot_id in ids]
+            self.pipelines = [p for p in self.pipelines if p.robot_id not in ids]
+            self.subscriptions = [s for s in self.subscriptions if s.robot_id not in ids]
+            self.status.robots = {k: v for k, v in self.status.robots.items() if k not in ids}
+        for pipeline in gone:
+            pipeline.detached = True
+        stopping = [threading.Thread(target=sub.stop, name=f"stop-{sub.robot_id}", daemon=True) for sub in subs]
+        for thread in stopping:
+            thread.start()
+        deadline = time.monotonic() + timeout_s
+        for thread in stopping:
+            thread.join(max(0.0, deadline - time.monotonic()))
+        return gone
+
     def run_once(self) -> int:
         """One pass over every robot; returns the number of messages taken."""
         taken = 0
-        for pipeline in self.pipelines:
-            taken += pipeline.step()
+        pipelines = list(self.pipelines)  # a snapshot: attach/detach replace the list
+        for pipeline in pipelines:
+            if not (pipeline.lease_lost or pipeline.detached):
+                taken += pipeline.step()
         now = time.time()
         if self.raw_retention_s > 0 and now - self._last_prune_s > 60.0:
             self._last_prune_s = now
-            for pipeline in self.pipelines:
+            for pipeline in pipelines:
                 try:
-                    self.store.prune_raw_batches(pipeline.robot_id, older_than_s=now - self.raw_retention_s)
-                except StoreUnavailableError:
-                    pass  # retried at the next prune
+                    older_than_s = now - self.raw_retention_s
+                    if pipeline.fence is None:
+                        self.store.prune_raw_batches(pipeline.robot_id, older_than_s=older_than_s)
+                    else:
+                        self.store.prune_raw_batches(pipeline.robot_id, older_than_s=older_than_s, fence=pipeline.fence)
+                except (StoreUnavailableError, LeaseLostError):
+                    pass  # retried at the next prune, or by the robot's new owner
         return taken
 
     def _run(self) -> None:

@@ -4,6 +4,14 @@ Why one transaction: the estimator checkpoint names the last sequence number its
 results and checkpoint must land together or not at all; a restart then resumes exactly after the
 checkpoint, and nothing is lost or doubled. Rows are plain dicts built by the service from the core's
 outputs (words and units in the keys); the API reads them back through the same class.
+
+Fencing (several workers on one PostgreSQL, see shadow/pool): a write of a worker that owns the robot
+through a lease carries a :class:`Fence` (its worker id and the lease's fencing token). The first
+statement of the transaction locks the robot's lease row (``FOR SHARE``) and checks that this worker
+still owns it under that token and that the lease has not expired on the database's clock; otherwise
+the transaction is rolled back and :class:`LeaseLostError` raised. The lock is held to the commit, so
+no other worker can be granted the robot between the check and the commit: a stalled worker that
+resumes after losing its lease writes nothing.
 """
 
 from __future__ import annotations
@@ -17,13 +25,28 @@ import sqlalchemy as sa
 
 from shadow.errors import ConfigurationError, ShadowError
 from shadow.store import schema
-from shadow.store.database import create_engine, current_revision, head_revision, migrate
+from shadow.store.database import create_engine, current_revision, head_revision, migrate, normalise_url
 
 DEAD_LETTER_HEAD_BYTES = 256  # how much of a bad payload is kept for diagnosis
 
 
 class StoreUnavailableError(ShadowError, RuntimeError):
     """The database cannot be reached or refused the write; nothing of the write was kept."""
+
+
+class LeaseLostError(ShadowError, RuntimeError):
+    """A fenced write found that the worker no longer holds the robot's lease; nothing of it was kept."""
+
+
+@dataclass(frozen=True, slots=True)
+class Fence:
+    """Who may write a robot's results: the owning worker and the fencing token of its lease."""
+
+    owner: str
+    token: int
+
+
+DATABASE_NOW_S = "extract(epoch from clock_timestamp())::float8"  # PostgreSQL's clock, seconds since the epoch
 
 
 @dataclass(frozen=True, slots=True)
@@ -69,9 +92,19 @@ class StepResults:
 class SqlStore:
     """The store on one database URL (SQLite file, or PostgreSQL)."""
 
-    def __init__(self, url: str, *, migrate_schema: bool = True) -> None:
+    def __init__(
+        self, url: str, *, migrate_schema: bool = True, session_settings: dict[str, str] | None = None
+    ) -> None:
+        """``session_settings``: PostgreSQL run-time settings for every connection (e.g.
+        ``idle_in_transaction_session_timeout``); refused for SQLite."""
         self.url = url
-        self.engine = create_engine(url)
+        options: dict[str, Any] = {}
+        if session_settings:
+            if not normalise_url(url).startswith("postgresql"):
+                raise ConfigurationError(f"session settings {sorted(session_settings)} need a PostgreSQL store")
+            flags = " ".join(f"-c {k}={v}" for k, v in sorted(session_settings.items()))
+            options["connect_args"] = {"options": flags}
+        self.engine = create_engine(url, **options)
         try:
             if migrate_schema:
                 migrate(self.engine)
@@ -88,6 +121,10 @@ class SqlStore:
     def close(self) -> None:
         self.engine.dispose()
 
+    @property
+    def is_postgresql(self) -> bool:
+        return self.engine.dialect.name == "postgresql"
+
     # --- write side -----------------------------------------------------------------------------
     def register_robot(self, robot_id: str, *, family: str, n_actuators: int, description_source: str = "") -> None:
         """Insert the robot, or update its family and size if it is known already."""
@@ -103,6 +140,17 @@ class SqlStore:
             "registered_at_s": time.time(),
         }
         with self._begin() as conn:
+            if self.is_postgresql:  # several workers may register the same robots at once
+                from sqlalchemy.dialects.postgresql import insert
+
+                statement = insert(schema.robots).values(row)
+                conn.execute(
+                    statement.on_conflict_do_update(
+                        index_elements=["robot_id"],
+                        set_={k: statement.excluded[k] for k in ("family", "n_actuators", "description_source")},
+                    )
+                )
+                return
             existing = conn.execute(sa.select(schema.robots.c.robot_id).where(schema.robots.c.robot_id == robot_id))
             if existing.first() is None:
                 conn.execute(schema.robots.insert(), row)
@@ -113,10 +161,16 @@ class SqlStore:
                     .values(family=family, n_actuators=n_actuators, description_source=description_source)
                 )
 
-    def write_step(self, results: StepResults) -> None:
-        """Write one step's rows and its checkpoint in one transaction."""
+    def write_step(self, results: StepResults, *, fence: Fence | None = None) -> None:
+        """Write one step's rows and its checkpoint in one transaction.
+
+        With a ``fence`` the transaction first checks the robot's lease (module docstring) and raises
+        :class:`LeaseLostError` when it is no longer this worker's.
+        """
         rid = results.robot_id
         with self._begin() as conn:
+            if fence is not None:
+                self._check_fence(conn, rid, fence)
             for table, rows in (
                 (schema.estimates, results.estimates),
                 (schema.residual_aggregates, results.residual_aggregates),
@@ -130,7 +184,7 @@ class SqlStore:
             if results.dead_letters:
                 conn.execute(schema.dead_letters.insert(), [_dead_letter_row(d) for d in results.dead_letters])
             if results.checkpoint is not None:
-                self._upsert_checkpoint(conn, results.checkpoint)
+                self._upsert_checkpoint(conn, results.checkpoint, None if fence is None else fence.token)
 
     def write_dead_letters(self, letters: Iterable[dict[str, Any]]) -> int:
         """Record rejected messages: received_at_s, topic, robot_id, reason_code, reason, payload (bytes)."""
@@ -140,9 +194,11 @@ class SqlStore:
                 conn.execute(schema.dead_letters.insert(), rows)
         return len(rows)
 
-    def prune_raw_batches(self, robot_id: str, *, older_than_s: float) -> int:
+    def prune_raw_batches(self, robot_id: str, *, older_than_s: float, fence: Fence | None = None) -> int:
         """Rolling retention of raw samples: delete the batches that ended before ``older_than_s``."""
         with self._begin() as conn:
+            if fence is not None:
+                self._check_fence(conn, robot_id, fence)
             result = conn.execute(
                 schema.raw_batches.delete().where(
                     schema.raw_batches.c.robot_id == robot_id, schema.raw_batches.c.last_time_s < older_than_s
@@ -150,12 +206,33 @@ class SqlStore:
             )
             return int(result.rowcount or 0)
 
-    def _upsert_checkpoint(self, conn: sa.Connection, cp: Checkpoint) -> None:
+    def _check_fence(self, conn: sa.Connection, robot_id: str, fence: Fence) -> None:
+        """Lock the robot's lease row to the end of the transaction; raise unless ``fence`` still holds it."""
+        if not self.is_postgresql:
+            raise ConfigurationError("fenced writes (a worker pool) need a PostgreSQL store")
+        t = schema.robot_leases
+        row = conn.execute(
+            sa.select(
+                t.c.owner,
+                t.c.fencing_token,
+                (t.c.expires_at_s > sa.literal_column(DATABASE_NOW_S, sa.Float)).label("live"),
+            )
+            .where(t.c.robot_id == robot_id)
+            .with_for_update(read=True)
+        ).first()
+        if row is None or row.owner != fence.owner or int(row.fencing_token) != fence.token or not row.live:
+            held = "no lease" if row is None else f"owner {row.owner!r}, token {row.fencing_token}, live {row.live}"
+            raise LeaseLostError(
+                f"robot {robot_id}: write refused, worker {fence.owner!r} no longer holds lease {fence.token} ({held})"
+            )
+
+    def _upsert_checkpoint(self, conn: sa.Connection, cp: Checkpoint, fencing_token: int | None) -> None:
         values = {
             "last_seq": cp.last_seq,
             "last_time_s": cp.last_time_s,
             "state": cp.state,
             "written_at_s": time.time(),
+            "fencing_token": fencing_token,
         }
         updated = conn.execute(
             schema.checkpoints.update().where(schema.checkpoints.c.robot_id == cp.robot_id).values(**values)

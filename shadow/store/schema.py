@@ -133,4 +133,40 @@ checkpoints = sa.Table(
     sa.Column("last_time_s", sa.Float, nullable=False),
     sa.Column("state", sa.LargeBinary, nullable=False),  # estimator state, versioned by the estimator
     sa.Column("written_at_s", sa.Float, nullable=False),
+    sa.Column("fencing_token", sa.BigInteger, nullable=True),  # lease it was written under (NULL: single worker)
+)
+
+# --- worker pool (PostgreSQL only; see shadow/pool). Times here are the database's clock, not a worker's. ---
+
+workers = sa.Table(
+    "workers",
+    metadata,
+    sa.Column("worker_id", sa.String(100), primary_key=True),  # the name given with --worker or [pool] worker
+    sa.Column("incarnation", sa.String(32), nullable=False),  # random per process start: tells restarts apart
+    sa.Column("host", sa.String(200), nullable=False),
+    sa.Column("pid", sa.Integer, nullable=False),
+    sa.Column("started_at_s", sa.Float, nullable=False),
+    sa.Column("heartbeat_at_s", sa.Float, nullable=False),
+    sa.Column("expires_at_s", sa.Float, nullable=False),  # live while this is in the future
+)
+
+robot_leases = sa.Table(
+    "robot_leases",
+    metadata,
+    sa.Column("robot_id", sa.String(200), sa.ForeignKey("robots.robot_id"), primary_key=True),
+    sa.Column("owner", sa.String(100), nullable=True),  # worker_id; NULL: free
+    sa.Column("fencing_token", sa.BigInteger, nullable=False),  # +1 at every grant, never reused
+    sa.Column("acquired_at_s", sa.Float, nullable=True),
+    sa.Column("expires_at_s", sa.Float, nullable=False),  # the owner must renew before this
+)
+
+lease_history = sa.Table(
+    "lease_history",
+    metadata,
+    sa.Column("robot_id", sa.String(200), sa.ForeignKey("robots.robot_id"), primary_key=True),
+    sa.Column("fencing_token", sa.BigInteger, primary_key=True),
+    sa.Column("owner", sa.String(100), nullable=False),
+    sa.Column("acquired_at_s", sa.Float, nullable=False),
+    sa.Column("ended_at_s", sa.Float, nullable=True),  # NULL: still held
+    sa.Column("end_cause", sa.String(16), nullable=True),  # "released" or "expired"
 )
