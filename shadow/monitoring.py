@@ -16,6 +16,10 @@ analysis and the tests all run exactly the same code. Per batch of samples:
 5. payload faults (delta): the carried mass of every transfer (a stretch with the tool gripping), estimated from
    that transfer alone with the filter's tool mass and friction taken off, checked against the work piece the
    description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance);
+   payload changes (delta): the mass of every single-piece transfer, and the tool's own mass weighed on every
+   empty move the same way, each go to a :class:`~shadow.detection.change.MassStepWatch` (two-sided CUSUM, GLR
+   for the masses before and after); a confirmed step is a ``payload_change`` event, the filter is told
+   (:func:`~shadow.estimation.kalman.reset_parameter`) and later transfers are judged against the new mass;
 6. wear: every ``wear_window_s`` the window's mean Coulomb and viscous friction per actuator and its mean
    drive temperature go to :class:`~shadow.detection.wear.WearMonitor` (temperature compensation with the
    declared viscous coefficient about the first window's temperature, indicator against the baseline's
@@ -34,8 +38,7 @@ autoregression, e.g. Box and Jenkins, "Time Series Analysis", AR(1) variance; fr
 is ``z_(1 - alpha/2) sigma_r`` for the per-sample alpha that bounds false alarms to the configured rate
 (:func:`~shadow.detection.momentum_observer.alpha_for_false_alarm_rate`), plus a floor that absorbs
 what the rigid model leaves out (structural modes, Stribeck friction, backlash), as a fraction of
-the rated effort. Wear trends, payload-change detection and structural-mode tracking are run by the
-offline analysis for now; their live wiring is the next step (see the health reasons).
+the rated effort. Structural-mode tracking (shadow.detection.modes) is not run live yet.
 """
 
 from __future__ import annotations
@@ -47,6 +50,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.stats import norm
 
+from shadow.detection.change import MassStep, MassStepSettings, MassStepWatch
 from shadow.detection.events import CollisionEvent
 from shadow.detection.health import Health, HealthLimits, actuator_health, robot_health
 from shadow.detection.momentum_observer import (
@@ -69,6 +73,7 @@ from shadow.detection.wear import (
 )
 from shadow.errors import ShadowError
 from shadow.estimation.baseline import Baseline
+from shadow.estimation.kalman import reset_parameter
 from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
 from shadow.ingest.wire import PositionUnit, SampleBatch, encode_binary
 from shadow.robots.description import RobotDescription, build_model
@@ -99,6 +104,7 @@ class MonitorSettings:
     wear_levels: WearLevels = field(default_factory=WearLevels)
     wear_reference_speed: float = 1.0  # v_ref of the wear indicator [rad/s | m/s]
     viscous_temperature_coefficient_per_k: float = 0.0  # declared k of exp(-k (T - T_ref)); 0: no compensation
+    tool_step_fraction: float = 0.05  # smallest change of the tool's own mass reported, fraction of its mass
     double_pick_ratio: float = 1.5  # carried / expected above this: two work pieces
     missed_pick_ratio: float = 0.5  # carried / expected below this: nothing carried
 
@@ -249,6 +255,16 @@ class RobotMonitor:
         self._last_seq = 0
         self._transfer = np.zeros((0, 3 + self.n))  # open transfer per sample: t, Y^T W z, Y^T W Y, |Y_p|
         self._transfer_open = False
+        self._empty = np.zeros((0, 3 + self.n))  # open empty move (tool not gripping), same columns
+        if self.delta:
+            tool = description.tool
+            self._expected_piece_kg = float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
+            # the spread is floored at a quarter of the smallest step: a learning phase of very alike stretches
+            # must not make the watch read every later gram as a change
+            piece_step = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
+            tool_step = self.settings.tool_step_fraction * float(tool.tool_mass_kg)  # type: ignore[union-attr]
+            self._piece_steps = MassStepWatch(MassStepSettings(min_step_kg=piece_step, spread_floor_kg=piece_step / 4))
+            self._tool_steps = MassStepWatch(MassStepSettings(min_step_kg=tool_step, spread_floor_kg=tool_step / 4))
         # wear window being filled: [window index, outputs, sum F_c (n), sum b (n), sum T (n), T samples (n)]
         self._wear_acc = np.concatenate([[-1.0, 0.0], np.zeros(4 * self.n)])
         self._wear: WearMonitor | None = None  # built at the first complete window (its temperature is T_ref)
@@ -410,6 +426,12 @@ class RobotMonitor:
                     if judge and self._transfer.shape[0]:
                         self._judge_transfer(self._transfer, float(x[1]), results)
                     self._transfer = np.zeros((0, 3 + self.n))
+            else:  # an empty move: on it the same terms weigh the tool alone, as a deviation from x[0]
+                self._empty = np.concatenate([self._empty, terms[a:e]])
+                if e < out.t.shape[0]:  # the tool closed at sample e
+                    if judge and self._empty.shape[0]:
+                        self._weigh_tool(self._empty, float(x[0]), results)
+                    self._empty = np.zeros((0, 3 + self.n))
             state = not state if e < out.t.shape[0] else state
             a = e
         self._transfer_open = bool(state)
@@ -438,7 +460,7 @@ class RobotMonitor:
         count = int(keep.sum())
         y_max = terms[:, 3:].max(axis=0)
         tool = self.description.tool
-        expected = float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
+        expected = self._expected_piece_kg  # the described work piece, or the new one after a reported change
         tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
         m = s_yz / s_yy  # weighted least squares of the carried mass
         std = 1.0 / np.sqrt(s_yy)
@@ -446,6 +468,14 @@ class RobotMonitor:
         results.estimates.append(  # every transfer's own mass, beside the filter's running estimates
             {"time_s": end, "parameter": "transfer_mass", "value": float(m), "std": float(std), "identifiable": True}
         )
+        # one work piece, right or wrong: watch its mass; not while the tool's own mass may have changed (a heavier
+        # gripper looks like a heavier work piece until the empty moves have confirmed it)
+        if s.missed_pick_ratio <= ratio <= s.double_pick_ratio and not self._tool_steps.alarmed:
+            step = self._piece_steps.push(start, end, float(m), float(std))
+            if step is not None:
+                self._report_mass_step("work_piece", step, 1, results)
+                expected = self._expected_piece_kg  # this transfer is judged against the new mass too
+                ratio = m / expected if expected > 0 else np.inf
         if ratio < s.missed_pick_ratio:
             fault, words = "missed_pick", "the tool closed but carried nothing"
         elif ratio > s.double_pick_ratio:
@@ -478,6 +508,71 @@ class RobotMonitor:
                 },
                 "evidence_start_s": start,
                 "evidence_end_s": end,
+                "evidence": None,
+                "source_seq": self._last_seq,
+            }
+        )
+
+    def _weigh_tool(self, terms: Array, x_tool_kg: float, results: StepResults) -> None:
+        """The tool's mass from one empty move alone (``x_tool + sum Y^T W z / sum Y^T W Y`` on the same terms as a
+        transfer), for the tool's step watch; moves with a collision in them, or too short, are not weighed."""
+        t = terms[:, 0]
+        start, end = float(t[0]), float(t[-1])
+        if end - start < self.settings.min_transfer_s:
+            return
+        if any(c.start_time_s <= end + 0.05 and c.end_time_s >= start - 0.05 for c in self._pending_events):
+            return
+        s_yz, s_yy = float(terms[:, 1].sum()), float(terms[:, 2].sum())
+        if s_yy <= 0.0:
+            return
+        step = self._tool_steps.push(start, end, x_tool_kg + s_yz / s_yy, 1.0 / np.sqrt(s_yy))
+        if step is not None:
+            self._report_mass_step("tool", step, 0, results)
+
+    def _report_mass_step(self, part: str, step: MassStep, index: int, results: StepResults) -> None:
+        """A payload change event, and the filter told: its estimate moves by the step, with the step's uncertainty."""
+        state = self.tracker.filter.state
+        half = 0.5 * (step.interval_after_kg[1] - step.interval_after_kg[0])
+        self.tracker.filter.state = reset_parameter(state, index, float(state.x[index]) + step.step_kg, half / 1.96)
+        tool = self.description.tool
+        if part == "tool":
+            self._piece_steps.forget_since(step.onset_time_s)  # transfers since then carried the tool's step too
+        if part == "work_piece":
+            self._expected_piece_kg = step.mass_after_kg
+            described = float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
+            tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
+            versus = f"described {described:.3f} +- {tolerance:.3f} kg"
+            what = "work piece"
+        else:
+            described = float(tool.tool_mass_kg)  # type: ignore[union-attr]
+            versus = f"described {described:.3f} kg"
+            what = "tool (gripper)"
+        b_lo, b_hi = step.interval_before_kg
+        a_lo, a_hi = step.interval_after_kg
+        results.events.append(
+            {
+                "kind": "payload_change",
+                "start_s": step.onset_time_s,
+                "end_s": step.alarm_time_s,
+                "severity": "medium",
+                "summary": (
+                    f"{what} mass changed from {step.mass_before_kg:.3f} to {step.mass_after_kg:.3f} kg "
+                    f"({versus}); the estimator was told"
+                ),
+                "figures": {
+                    "part": part,
+                    "mass_before_kg": step.mass_before_kg,
+                    "mass_before_low_kg": b_lo,
+                    "mass_before_high_kg": b_hi,
+                    "mass_after_kg": step.mass_after_kg,
+                    "mass_after_low_kg": a_lo,
+                    "mass_after_high_kg": a_hi,
+                    "described_mass_kg": described,
+                    "stretches_before_count": step.stretches_before,
+                    "stretches_after_count": step.stretches_after,
+                },
+                "evidence_start_s": step.onset_time_s,
+                "evidence_end_s": step.alarm_time_s,
                 "evidence": None,
                 "source_seq": self._last_seq,
             }
@@ -672,6 +767,11 @@ class RobotMonitor:
         state["last_seq"] = np.array(self._last_seq)
         state["transfer"] = self._transfer.copy()
         state["transfer_open"] = np.array(self._transfer_open)
+        if self.delta:
+            state["empty"] = self._empty.copy()
+            state["expected_piece_kg"] = np.array(self._expected_piece_kg)
+            state.update(self._piece_steps.save("piece_steps/"))
+            state.update(self._tool_steps.save("tool_steps/"))
         state["wear/acc"] = self._wear_acc.copy()
         state["wear/t_ref"] = np.array(self._wear_t_ref)
         state["wear/days"] = np.zeros(0) if self._wear is None else self._wear.days.copy()
@@ -710,6 +810,12 @@ class RobotMonitor:
         self._last_seq = int(state["last_seq"])
         self._transfer = np.asarray(state["transfer"], dtype=float).reshape(-1, 3 + self.n).copy()
         self._transfer_open = bool(state["transfer_open"])
+        if self.delta:  # checkpoints written before the step watches existed lack these keys
+            self._empty = np.asarray(state.get("empty", np.zeros((0, 3 + self.n))), dtype=float).reshape(-1, 3 + self.n)
+            described = float(self.description.tool.work_piece_mass_kg)  # type: ignore[union-attr]
+            self._expected_piece_kg = float(state.get("expected_piece_kg", described))
+            self._piece_steps.restore(state, "piece_steps/")
+            self._tool_steps.restore(state, "tool_steps/")
         self._wear_acc = np.asarray(state["wear/acc"], dtype=float).copy()
         self._wear_t_ref = float(state["wear/t_ref"])
         self._wear, self._wear_trends = None, []

@@ -340,3 +340,180 @@ def glr_mean_step(x: Array, sigma: float | None = None, *, confidence: float = 0
         interval_after=np.array([m2 - half2, m2 + half2]),
         sigma=float(s),
     )
+
+
+# ------------------------------------------------------------------------------------------ mass steps
+@dataclass(frozen=True, slots=True)
+class MassStepSettings:
+    """How :class:`MassStepWatch` follows a mass measured once per stretch (a transfer, an empty move).
+
+    learn_count : stretches that set the reference (median) and the spread (1.4826 MAD) before watching
+    min_step_kg : the smallest step worth an event; the CUSUM drift is nu = min_step / (2 spread) in [0.5, 2.5]
+    spread_floor_kg : lower bound of the spread (identical stretches would otherwise give 0)
+    arl_stretches : mean number of stretches between false alarms on an unchanged mass (Siegmund, eq. 2)
+    confirm_count : stretches after the alarm's onset weighed before the step is reported
+    history : stretches kept for the GLR estimate of the masses before and after a step
+    """
+
+    learn_count: int = 20
+    min_step_kg: float = 0.02
+    spread_floor_kg: float = 1e-3
+    arl_stretches: float = 1e5
+    history: int = 200
+    confirm_count: int = 5
+
+    def __post_init__(self) -> None:
+        if self.learn_count < 5 or self.history < 2 * self.learn_count:
+            raise ConfigurationError("mass steps: learn_count >= 5 and history >= 2 learn_count are needed")
+        if not (self.min_step_kg > 0.0 and self.spread_floor_kg > 0.0 and self.arl_stretches > 1.0):
+            raise ConfigurationError("mass steps: min_step_kg, spread_floor_kg > 0 and arl_stretches > 1 are needed")
+
+
+@dataclass(frozen=True, slots=True)
+class MassStep:
+    """A sustained step of a mass: when it began, its size before and after with 95 % intervals [kg]."""
+
+    onset_time_s: float  # start of the first stretch after the change (Page's onset, refined by the GLR)
+    alarm_time_s: float  # end of the stretch at which the CUSUM crossed its threshold
+    mass_before_kg: float
+    mass_after_kg: float
+    interval_before_kg: tuple[float, float]
+    interval_after_kg: tuple[float, float]
+    stretches_before: int
+    stretches_after: int
+
+    @property
+    def step_kg(self) -> float:
+        return self.mass_after_kg - self.mass_before_kg
+
+
+class MassStepWatch:
+    """A two-sided CUSUM on one mass estimated per stretch, with the GLR's before/after masses at an alarm.
+
+    The first ``learn_count`` stretches give the reference ``m_0`` (their median) and the spread ``s``
+    (1.4826 times their median absolute deviation: consistent for Gaussian data and deaf to a few odd
+    stretches). Then each stretch adds ``z = (m - m_0) / sqrt(s^2 + sigma_m^2)`` (sigma_m: the stretch's own
+    standard error) to :func:`cusum_step`. After an alarm it waits for ``confirm_count`` stretches past the
+    onset; then :func:`glr_mean_step` on the stretches since the last reset places the change and gives the
+    masses before and after. A step smaller than half ``min_step_kg`` was an excursion and is dropped;
+    otherwise the watch takes the mass after as its new reference (keeping the spread) and watches on from
+    the stretches after the change.
+    """
+
+    def __init__(self, settings: MassStepSettings) -> None:
+        self.settings = settings
+        self._start_learning()
+
+    def _start_learning(self) -> None:
+        self.reference_kg = float("nan")
+        self.spread_kg = float("nan")
+        self.h = float("nan")  # set with the spread, at the end of learning
+        self._rows = np.zeros((0, 4))  # t_start, t_end, m, sigma_m per stretch since the last reset
+        self._cusum = cusum_initial_state(1)
+        self._alarm_onset_s = float("nan")  # an alarm waiting for confirmation: its onset time [s]
+
+    @property
+    def learning(self) -> bool:
+        return not np.isfinite(self.reference_kg)
+
+    def _nu_for(self, spread_kg: float) -> float:
+        """nu = min_step / (2 s), kept in [0.5, 2.5]: a step below one spread is not told apart from the scatter,
+        and above 2.5 the threshold for the run length would fall to zero (the statistic never builds up)."""
+        return min(max(self.settings.min_step_kg / (2.0 * spread_kg), 0.5), 2.5)
+
+    def push(self, t_start_s: float, t_end_s: float, mass_kg: float, std_kg: float) -> MassStep | None:
+        """Add one stretch's mass; returns the step once an alarm is confirmed by ``confirm_count`` stretches."""
+        s = self.settings
+        self._rows = np.concatenate([self._rows, [[t_start_s, t_end_s, mass_kg, std_kg]]])[-s.history :]
+        if self.learning:
+            if self._rows.shape[0] >= s.learn_count:
+                m = self._rows[:, 2]
+                self.reference_kg = float(np.median(m))
+                self.spread_kg = max(1.4826 * float(np.median(np.abs(m - self.reference_kg))), s.spread_floor_kg)
+                self.h = threshold_for_arl(s.arl_stretches, self._nu_for(self.spread_kg), h_max=50.0)
+                self._rows = self._rows[:0]
+            return None
+        if np.isnan(self._alarm_onset_s):
+            z = (mass_kg - self.reference_kg) / np.hypot(self.spread_kg, std_kg)
+            nu = self._nu_for(self.spread_kg)
+            _, _, alarms, self._cusum = cusum_step(self._cusum, np.array([t_end_s]), np.array([[z]]), nu, self.h)
+            if not alarms:
+                return None
+            self._alarm_onset_s = alarms[0].onset_time_s  # Page's onset: the end time of its first stretch
+        rows = self._rows
+        if int(np.sum(rows[:, 1] >= self._alarm_onset_s)) < s.confirm_count:
+            return None  # wait for enough stretches after the onset to weigh the new mass
+        # GLR over the kept stretches, two pseudo-stretches of the learned reference first, known spread
+        x = np.concatenate([np.full(2, self.reference_kg), rows[:, 2]])
+        glr = glr_mean_step(x, self.spread_kg, min_segment=2)
+        k0 = min(max(glr.change_index - 2, 0), rows.shape[0] - 1)
+        before, after = rows[:k0, 2], rows[k0:, 2]
+        self._alarm_onset_s = float("nan")
+        self._cusum = cusum_initial_state(1)
+        m_after = float(np.mean(after))
+        m_before = float(np.mean(before)) if before.size else self.reference_kg
+        if abs(m_after - m_before) < 0.5 * s.min_step_kg:
+            return None  # an excursion, not a step: the mass is back where it was
+        half_after = 1.96 * self.spread_kg / np.sqrt(after.size)  # mean +- z s / sqrt(n), s the learned spread
+        half_before = 1.96 * self.spread_kg / np.sqrt(max(before.size, s.learn_count))
+        self.reference_kg = m_after
+        self._rows = rows[k0:]
+        return MassStep(
+            onset_time_s=float(rows[k0, 0]),
+            alarm_time_s=float(t_end_s),
+            mass_before_kg=m_before,
+            mass_after_kg=m_after,
+            interval_before_kg=(m_before - half_before, m_before + half_before),
+            interval_after_kg=(m_after - half_after, m_after + half_after),
+            stretches_before=int(before.size),
+            stretches_after=int(after.size),
+        )
+
+    @property
+    def alarmed(self) -> bool:
+        """True while an alarm waits for its confirming stretches."""
+        return not np.isnan(self._alarm_onset_s)
+
+    def forget_since(self, t_s: float) -> None:
+        """Drop the stretches that started at or after ``t_s`` and restart the statistic (their masses were
+        weighed against something that has since been found to have changed)."""
+        self._rows = self._rows[self._rows[:, 0] < t_s]
+        self._cusum = cusum_initial_state(1)
+        self._alarm_onset_s = float("nan")
+
+    def save(self, prefix: str) -> dict[str, Array]:
+        c = self._cusum
+        return {
+            f"{prefix}reference_kg": np.array(self.reference_kg),
+            f"{prefix}spread_kg": np.array(self.spread_kg),
+            f"{prefix}h": np.array(self.h),
+            f"{prefix}alarm_onset_s": np.array(self._alarm_onset_s),
+            f"{prefix}rows": self._rows.copy(),
+            f"{prefix}cusum": np.array(
+                [
+                    c.g_pos[0],
+                    c.g_neg[0],
+                    c.onset_pos_index[0],
+                    c.onset_neg_index[0],
+                    c.onset_pos_time_s[0],
+                    c.onset_neg_time_s[0],
+                    c.n_seen,
+                ]
+            ),  # fmt: skip
+        }
+
+    def restore(self, state: dict[str, Array], prefix: str) -> None:
+        """Continue from :meth:`save`; a state without these keys (an older checkpoint) starts learning afresh."""
+        if f"{prefix}rows" not in state:
+            self._start_learning()
+            return
+        self.reference_kg = float(state[f"{prefix}reference_kg"])
+        self.spread_kg = float(state[f"{prefix}spread_kg"])
+        self.h = float(state[f"{prefix}h"])
+        self._alarm_onset_s = float(state[f"{prefix}alarm_onset_s"])
+        self._rows = np.asarray(state[f"{prefix}rows"], dtype=float).reshape(-1, 4).copy()
+        g = np.asarray(state[f"{prefix}cusum"], dtype=float)
+        self._cusum = CusumState(
+            g[0:1].copy(), g[1:2].copy(), g[2:3].astype(np.int64), g[3:4].astype(np.int64), g[4:5].copy(),
+            g[5:6].copy(), int(g[6]),
+        )  # fmt: skip

@@ -254,3 +254,22 @@ class BatchKalmanFilter:
         """Predict over ``duration_s``, fold the batch (H (N, n, p), z (N, n)), return the report."""
         self.state, report = kf_step(self.state, H, z, duration_s, self.model)
         return report
+
+
+def reset_parameter(state: FilterState, index: int, value: float, std: float) -> FilterState:
+    """The state after a detected step of one parameter: ``x_i = value`` with variance ``std^2``, uncorrelated.
+
+    A change detector that has found a step (a new tool, a new work piece) tells the filter so, instead of
+    waiting for the random walk to carry the estimate over: row and column i of P are cleared and
+    ``P_ii = std^2``. A block-diagonal split of a positive definite P with a positive scalar stays positive
+    definite, so the filter's invariants hold.
+    """
+    if not 0 <= index < state.x.shape[0] or not (std > 0.0 and np.isfinite(value)):
+        raise ConfigurationError(f"reset_parameter: index {index}, value {value!r}, std {std!r} not usable")
+    x = state.x.copy()
+    x[index] = value
+    P = state.P.copy()
+    P[index, :] = 0.0
+    P[:, index] = 0.0
+    P[index, index] = std**2
+    return FilterState(x, P, state.R.copy())
