@@ -16,12 +16,14 @@ resumes after losing its lease writes nothing.
 
 from __future__ import annotations
 
+import math
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import sqlalchemy as sa
+from sqlalchemy.sql.util import ClauseAdapter
 
 from shadow.errors import ConfigurationError, ShadowError
 from shadow.store import schema
@@ -263,24 +265,69 @@ class SqlStore:
         start_s: float,
         end_s: float,
         parameters: Sequence[str] | None = None,
+        every_s: float | None = None,
         limit: int = 10_000,
+        offset: int = 0,
     ) -> list[dict[str, Any]]:
+        """Estimate rows in ``[start_s, end_s)`` ordered by time and parameter, from ``offset`` on, at most
+        ``limit``. With ``every_s``: only the last row of each step per parameter (:func:`last_per_step`)."""
         t = schema.estimates
-        query = sa.select(t).where(t.c.robot_id == robot_id, t.c.time_s >= start_s, t.c.time_s < end_s)
+        where = [t.c.robot_id == robot_id]
         if parameters:
-            query = query.where(t.c.parameter.in_(list(parameters)))
-        with self.engine.connect() as conn:
-            rows = conn.execute(query.order_by(t.c.time_s, t.c.parameter).limit(limit))
-            return [dict(r._mapping) for r in rows]
+            where.append(t.c.parameter.in_(list(parameters)))
+        series = _Series(t, t.c.parameter, where, self._parameter_keys(robot_id, parameters))
+        return self._series(series, start_s, end_s, every_s, limit, offset)
 
     def residual_aggregates(
-        self, robot_id: str, *, start_s: float, end_s: float, limit: int = 10_000
+        self,
+        robot_id: str,
+        *,
+        start_s: float,
+        end_s: float,
+        every_s: float | None = None,
+        limit: int = 10_000,
+        offset: int = 0,
     ) -> list[dict[str, Any]]:
+        """Residual aggregates in ``[start_s, end_s)`` ordered by time and actuator, from ``offset`` on, at most
+        ``limit``. With ``every_s``: only the rows of the last aggregation window of each step (every actuator's
+        row of one window has the window's time; :func:`last_per_step`)."""
         t = schema.residual_aggregates
-        query = sa.select(t).where(t.c.robot_id == robot_id, t.c.time_s >= start_s, t.c.time_s < end_s)
+        return self._series(
+            _Series(t, t.c.actuator, [t.c.robot_id == robot_id], None), start_s, end_s, every_s, limit, offset
+        )
+
+    def _parameter_keys(self, robot_id: str, parameters: Sequence[str] | None) -> sa.CTE:
+        """The parameters asked for; or all the robot's, by a loose index scan of (robot_id, parameter, time_s):
+        each one the smallest name above the previous, one seek each."""
+        t = schema.estimates
+        if parameters:
+            return _literal_keys([sa.cast(sa.literal(p), t.c.parameter.type) for p in dict.fromkeys(parameters)])
+        x = t.alias("x")
+        first = sa.select(sa.func.min(t.c.parameter).label("key")).where(t.c.robot_id == robot_id)
+        keys = first.cte("keys", recursive=True)
+        following = sa.select(
+            sa.select(sa.func.min(x.c.parameter)).where(x.c.robot_id == robot_id, x.c.parameter > keys.c.key)
+            .scalar_subquery()
+        ).where(keys.c.key.is_not(None))  # fmt: skip
+        return keys.union_all(following)
+
+    def _series(
+        self, series: _Series, start_s: float, end_s: float, every_s: float | None, limit: int, offset: int
+    ) -> list[dict[str, Any]]:
+        t, key = series.table, series.key
         with self.engine.connect() as conn:
-            rows = conn.execute(query.order_by(t.c.time_s, t.c.actuator).limit(limit))
-            return [dict(r._mapping) for r in rows]
+            if every_s is None or not math.isfinite(end_s / every_s) or abs(end_s / every_s) >= 2.0**52:
+                # no downsampling, or steps finer than the clock's resolution: every row is the last of its step
+                query = (
+                    sa.select(t)
+                    .where(*series.where, t.c.time_s >= start_s, t.c.time_s < end_s)
+                    .order_by(t.c.time_s, key)
+                    .limit(limit)
+                    .offset(offset)
+                )
+                return [dict(r._mapping) for r in conn.execute(query)]
+            rows = last_per_step(conn, series, start_s, end_s, every_s, want=offset + limit)
+        return rows[offset : offset + limit]
 
     def events(
         self,
@@ -311,18 +358,32 @@ class SqlStore:
         return None if row is None else dict(row._mapping)
 
     def latest_health(self, robot_id: str) -> list[dict[str, Any]]:
-        """The newest snapshot of each scope (robot and every actuator)."""
+        """The newest snapshot of each scope (robot and every actuator).
+
+        A loose index scan of (robot_id, scope, time_s): the scopes are found one seek each (the smallest scope
+        above the previous one), and each scope's newest row by one more, so the cost grows with the number of
+        scopes and not with the robot's history.
+        """
         t = schema.health_snapshots
+        x, y = t.alias("x"), t.alias("y")
+        first = sa.select(sa.func.min(t.c.scope).label("scope")).where(t.c.robot_id == robot_id)
+        scopes = first.cte("scopes", recursive=True)
+        following = sa.select(
+            sa.select(sa.func.min(x.c.scope)).where(x.c.robot_id == robot_id, x.c.scope > scopes.c.scope)
+            .scalar_subquery()
+        ).where(scopes.c.scope.is_not(None))  # fmt: skip
+        scopes = scopes.union_all(following)
         newest = (
-            sa.select(t.c.scope, sa.func.max(t.c.time_s).label("time_s"))
-            .where(t.c.robot_id == robot_id)
-            .group_by(t.c.scope)
-            .subquery()
+            sa.select(sa.func.max(y.c.time_s)).where(y.c.robot_id == robot_id, y.c.scope == scopes.c.scope)
+        ).scalar_subquery()
+        query = (
+            sa.select(t)
+            .select_from(scopes)
+            .join(t, sa.and_(t.c.robot_id == robot_id, t.c.scope == scopes.c.scope, t.c.time_s == newest))
+            .order_by(t.c.scope)
         )
-        query = sa.select(t).join(newest, sa.and_(t.c.scope == newest.c.scope, t.c.time_s == newest.c.time_s))
         with self.engine.connect() as conn:
-            rows = conn.execute(query.where(t.c.robot_id == robot_id).order_by(t.c.scope))
-            return [dict(r._mapping) for r in rows]
+            return [dict(r._mapping) for r in conn.execute(query)]
 
     def unmonitored_intervals(self, robot_id: str, *, start_s: float, end_s: float) -> list[dict[str, Any]]:
         t = schema.unmonitored_intervals
@@ -407,3 +468,140 @@ def split_robot_id(robot_id: str) -> tuple[str, str, str]:
     if len(parts) != 3 or not all(parts):
         raise ConfigurationError(f"robot id {robot_id!r}: must be 'site/cell/robot'")
     return parts[0], parts[1], parts[2]
+
+
+@dataclass(frozen=True, slots=True)
+class _Series:
+    """A table of series: rows keyed by (robot_id, time_s, key), the robot's rows selected by ``where``."""
+
+    table: sa.Table
+    key: sa.Column[Any]
+    where: list[Any]
+    keys: sa.CTE | None  # one column "key": the series, each downsampled on its own; None: whole outputs
+
+
+def _literal_keys(values: list[Any]) -> sa.CTE:
+    if not values:  # no series at all: a CTE without rows
+        return sa.select(sa.literal(None).label("key")).where(sa.false()).cte("keys")
+    return sa.union_all(*[sa.select(v.label("key")) for v in values]).cte("keys")
+
+
+SEEK_BUDGET = 20_000  # (step, series) lookups per statement of last_per_step
+SCAN_BATCH = 2_000  # rows per read when last_per_step scans
+
+
+def step_of(time_s: float, every_s: float) -> int:
+    """Index k of the step ``k every_s <= time_s < (k + 1) every_s``, with the products as the database forms them."""
+    k = math.floor(time_s / every_s)
+    if k * every_s > time_s:
+        k -= 1
+    elif (k + 1) * every_s <= time_s:
+        k += 1
+    return k
+
+
+def last_per_step(
+    conn: sa.Connection, series: _Series, start_s: float, end_s: float, every_s: float, *, want: int
+) -> list[dict[str, Any]]:
+    """The last row of each step ``[k every_s, (k + 1) every_s)`` within ``[start_s, end_s)`` per series (or,
+    with ``series.keys`` None, all rows of the step's newest time: its last output), ordered by time and key;
+    the first ``want`` of them.
+
+    The rows are taken a stretch at a time from the next row on (one seek, so a stretch without rows costs
+    nothing), each stretch one of two ways, chosen by how many rows the next two steps hold (a probe of four rows
+    per series), so that the cost grows with the rows returned and not with the rows in the range:
+
+    * seeking, when the steps hold many rows each: one statement finds, for a run of steps (at most
+      :data:`SEEK_BUDGET` step and series pairs, no more than ``want`` needs), each pair's last row by one index
+      seek backwards from the step's end;
+    * scanning, when the steps are as fine as the rows or finer: the next :data:`SCAN_BATCH` rows in time order,
+      of which each complete step's last row per series is kept.
+    """
+    t, key = series.table, series.key
+    out: list[dict[str, Any]] = []
+    keys: set[Any] | None = None
+    if series.keys is not None:
+        keys = {r[0] for r in conn.execute(sa.select(series.keys.c.key))}
+        if not keys:
+            return out
+    k_last = step_of(end_s, every_s)
+    if k_last * every_s == end_s:
+        k_last -= 1  # end_s is not in the range
+    cursor = start_s  # every step before this one is done
+    while len(out) < want:
+        in_range = [*series.where, t.c.time_s >= cursor, t.c.time_s < end_s]
+        first = conn.execute(sa.select(sa.func.min(t.c.time_s)).where(*in_range)).scalar_one_or_none()
+        if first is None:
+            break
+        k = step_of(first, every_s)
+        if keys is not None:
+            per_step = len(keys)
+        else:  # the rows of one output
+            per_step = conn.execute(sa.select(sa.func.count()).where(*series.where, t.c.time_s == first)).scalar_one()
+        ahead = sa.select(t.c.time_s).where(*in_range).order_by(t.c.time_s).offset(4 * per_step).limit(1)
+        far = conn.execute(ahead).scalar_one_or_none()
+        if far is not None and far - first < 2.0 * every_s:  # more than two rows per series and step: seek
+            width = max(1, min(SEEK_BUDGET // per_step, -(-(want - len(out)) // per_step)))
+            k1 = min(k_last, k + width - 1)
+            out.extend(_seek_steps(conn, series, k, k1, start_s, end_s, every_s))
+            cursor = (k1 + 1) * every_s
+            continue
+        rows = conn.execute(sa.select(t).where(*in_range).order_by(t.c.time_s, key).limit(SCAN_BATCH))
+        batch = [dict(r._mapping) for r in rows]
+        k_open = None if len(batch) < SCAN_BATCH else step_of(batch[-1]["time_s"], every_s)  # None: to the end
+        if k_open == k:  # a single step of more than SCAN_BATCH rows
+            out.extend(_seek_steps(conn, series, k, k, start_s, end_s, every_s))
+            cursor = (k + 1) * every_s
+            continue
+        done = [(step_of(r["time_s"], every_s), r) for r in batch]
+        done = [(step, r) for step, r in done if step != k_open]  # the open step is read again from its start
+        if keys is None:  # all rows of each step's newest time
+            newest: dict[int, list[dict[str, Any]]] = {}
+            for step, r in done:
+                held = newest.get(step)
+                if held is None or held[0]["time_s"] < r["time_s"]:
+                    newest[step] = [r]
+                elif held[0]["time_s"] == r["time_s"]:
+                    held.append(r)
+            kept = [r for rows_of_step in newest.values() for r in rows_of_step]
+        else:  # the last row of each step and series
+            kept = list({(step, r[key.name]): r for step, r in done if r[key.name] in keys}.values())
+        out.extend(sorted(kept, key=lambda r: (r["time_s"], r[key.name])))
+        if k_open is None:
+            break
+        cursor = k_open * every_s
+    return out[:want]
+
+
+def _seek_steps(
+    conn: sa.Connection, series: _Series, k0: int, k1: int, start_s: float, end_s: float, every_s: float
+) -> list[dict[str, Any]]:
+    """The last row of each step k0..k1 per series (or all rows of its newest time): a seek backwards from each
+    step's end."""
+    t, key = series.table, series.key
+    x = t.alias("x")
+    adapt = ClauseAdapter(x).traverse
+    steps = sa.select(sa.cast(sa.literal(k0), sa.BigInteger).label("k")).cte("steps", recursive=True)
+    steps = steps.union_all(sa.select(steps.c.k + 1).where(steps.c.k < k1))
+    every = sa.literal(every_s, sa.Float)
+    lower, upper = steps.c.k * every, (steps.c.k + 1) * every
+    # one bound on each side (two would make SQLite prefer the primary key's time range to the series index)
+    lower = sa.case((lower < start_s, sa.literal(start_s, sa.Float)), else_=lower)
+    upper = sa.case((upper > end_s, sa.literal(end_s, sa.Float)), else_=upper)
+    same = [adapt(c) for c in series.where]
+    if series.keys is not None:
+        same.append(adapt(key) == series.keys.c.key)
+    newest = (
+        sa.select(x.c.time_s)
+        .where(*same, x.c.time_s >= lower, x.c.time_s < upper)
+        .order_by(x.c.time_s.desc())
+        .limit(1)
+        .scalar_subquery()
+    )
+    if series.keys is not None:  # the planners take the small CTEs first, and look the rows up by their key
+        on = sa.and_(*series.where, key == series.keys.c.key, t.c.time_s == newest)
+        query = sa.select(t).select_from(steps).join(series.keys, sa.true()).join(t, on)
+    else:  # without the keys, SQLite would take the table first: look the rows up by the list of times
+        times = sa.select(newest.label("time_s")).select_from(steps)
+        query = sa.select(t).where(*series.where, t.c.time_s.in_(times))
+    return [dict(r._mapping) for r in conn.execute(query.order_by(t.c.time_s, key))]

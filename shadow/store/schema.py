@@ -46,6 +46,7 @@ estimates = sa.Table(
     sa.Column("value", sa.Float, nullable=False),
     sa.Column("std", sa.Float, nullable=False),  # one standard deviation, same unit as value
     sa.Column("identifiable", sa.Boolean, nullable=False),  # False: the motion did not excite it
+    sa.Index("ix_estimates_series", "robot_id", "parameter", "time_s"),  # one parameter's series, its names
 )
 
 residual_aggregates = sa.Table(
@@ -88,6 +89,7 @@ health_snapshots = sa.Table(
     sa.Column("state", sa.String(16), nullable=False),
     sa.Column("reasons", sa.JSON, nullable=False),  # list of sentences
     sa.Column("figures", sa.JSON, nullable=False),
+    sa.Index("ix_health_snapshots_scope", "robot_id", "scope", "time_s"),  # newest of each scope in a few seeks
 )
 
 dead_letters = sa.Table(
