@@ -24,7 +24,20 @@ analysis and the tests all run exactly the same code. Per batch of samples:
    drive temperature go to :class:`~shadow.detection.wear.WearMonitor` (temperature compensation with the
    declared viscous coefficient about the first window's temperature, indicator against the baseline's
    friction, Theil-Sen trend, forecast of the day the last level is crossed, level events);
-7. health per actuator and for the robot (:mod:`shadow.detection.health`), wear indicator included.
+7. model drift: the innovation of every output goes to a :class:`~shadow.detection.modes.WelchAccumulator`
+   (Hann segments of ``mode_segment_s``, 50 % overlap, at the stream's own sample period, learnt from the first
+   output); every ``mode_window_s`` of stream gives a Welch PSD and the structural mode fitted to it
+   (:func:`~shadow.detection.modes.estimate_mode`): two estimate rows ``mode_frequency_hz`` and
+   ``mode_damping_ratio`` (identifiable when the fit is GOOD; no rows when no peak stands out). The median of the
+   first ``mode_reference_estimates`` GOOD ones is the mode's reference; a GOOD frequency more than
+   ``mode_drift_fraction`` below it is one ``drift`` event (a loosening joint or a cracked rod lowers the
+   stiffness), re-armed once a frequency is back within half that fraction. The mode shows only where something
+   excites it broadly (impacts, stops, quick moves); a smooth motion's residual is lines of its own harmonics,
+   which give WEAK estimates at best. Per actuator, the innovation's RMS over each ``wear_window_s`` against the
+   baseline's noise std: above ``residual_drift_ratio`` one ``drift`` event (calibration lost, backlash grown),
+   re-armed below ``residual_drift_clear_ratio``; the first ``residual_drift_settle_s`` (the filter's start-up)
+   are not counted;
+8. health per actuator and for the robot (:mod:`shadow.detection.health`), wear indicator included.
 
 Carried mass of a transfer (weighted least squares on one scalar, the work-piece column of the regressor):
 ``z_k = tau_meas_k - tau_known_k - Y_p,k m_tool - tau_f,k``, ``m = sum Y^T W z / sum Y^T W Y`` with
@@ -38,7 +51,7 @@ autoregression, e.g. Box and Jenkins, "Time Series Analysis", AR(1) variance; fr
 is ``z_(1 - alpha/2) sigma_r`` for the per-sample alpha that bounds false alarms to the configured rate
 (:func:`~shadow.detection.momentum_observer.alpha_for_false_alarm_rate`), plus a floor that absorbs
 what the rigid model leaves out (structural modes, Stribeck friction, backlash), as a fraction of
-the rated effort. Structural-mode tracking (shadow.detection.modes) is not run live yet.
+the rated effort.
 """
 
 from __future__ import annotations
@@ -53,6 +66,7 @@ from scipy.stats import norm
 from shadow.detection.change import MassStep, MassStepSettings, MassStepWatch
 from shadow.detection.events import CollisionEvent
 from shadow.detection.health import Health, HealthLimits, actuator_health, robot_health
+from shadow.detection.modes import ModeQuality, WelchAccumulator, WelchEstimate, WelchSettings
 from shadow.detection.momentum_observer import (
     MIN_EXTREME_VALUE_BLOCKS,
     CollisionMonitor,
@@ -71,7 +85,7 @@ from shadow.detection.wear import (
     WearMonitor,
     wear_trend,
 )
-from shadow.errors import ShadowError
+from shadow.errors import ConfigurationError, ShadowError
 from shadow.estimation.baseline import Baseline
 from shadow.estimation.kalman import reset_parameter
 from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
@@ -107,6 +121,33 @@ class MonitorSettings:
     tool_step_fraction: float = 0.05  # smallest change of the tool's own mass reported, fraction of its mass
     double_pick_ratio: float = 1.5  # carried / expected above this: two work pieces
     missed_pick_ratio: float = 0.5  # carried / expected below this: nothing carried
+    mode_tracking: bool = True  # Welch PSD of the innovation and the structural mode fitted to it
+    mode_segment_s: float = 4.0  # Welch segment [s]; PSD bins are 1 / mode_segment_s apart [Hz]
+    mode_window_s: float = 60.0  # stream averaged into one mode estimate [s]
+    mode_band_hz: tuple[float, float] = (5.0, 80.0)  # where the mode is looked for [Hz]
+    mode_reference_estimates: int = 3  # the median of this many first GOOD estimates is the mode's reference
+    mode_drift_fraction: float = 0.05  # a GOOD frequency this far below the reference is drift [-]
+    residual_drift_ratio: float = 2.0  # innovation RMS over a wear window / baseline noise std above this: drift
+    residual_drift_clear_ratio: float = 1.5  # below this again, the actuator's residual drift is re-armed
+    residual_drift_settle_s: float = 10.0  # the estimator's start-up: outputs this soon after the first are not counted
+
+    def __post_init__(self) -> None:
+        if not 0.0 < self.mode_segment_s <= self.mode_window_s:
+            raise ConfigurationError(
+                f"mode_segment_s, mode_window_s: need 0 < segment <= window, got {self.mode_segment_s!r}, "
+                f"{self.mode_window_s!r}"
+            )
+        if not 0.0 < self.mode_drift_fraction < 1.0:
+            raise ConfigurationError(f"mode_drift_fraction: must be in (0, 1), got {self.mode_drift_fraction!r}")
+        if self.mode_reference_estimates < 1:
+            raise ConfigurationError(f"mode_reference_estimates: must be >= 1, got {self.mode_reference_estimates!r}")
+        if not self.residual_drift_settle_s >= 0.0:
+            raise ConfigurationError(f"residual_drift_settle_s: must be >= 0, got {self.residual_drift_settle_s!r}")
+        if not 0.0 < self.residual_drift_clear_ratio <= self.residual_drift_ratio:
+            raise ConfigurationError(
+                "residual_drift_clear_ratio, residual_drift_ratio: need 0 < clear <= ratio, got "
+                f"{self.residual_drift_clear_ratio!r}, {self.residual_drift_ratio!r}"
+            )
 
 
 def nominal_baseline(description: RobotDescription) -> Baseline:
@@ -272,6 +313,13 @@ class RobotMonitor:
         self._wear_trends: list[Any] = []
         self._x_prior = np.zeros(0)  # filter estimate before the current output (not yet pulled by it)
         self._std_prior = np.zeros(0)
+        self._welch: WelchAccumulator | None = None  # built at the first output (its sample period)
+        self._mode_reference = np.zeros((0, 2))  # first GOOD estimates: frequency [Hz], damping ratio
+        self._mode_alarmed = False
+        # residual RMS window being filled: [window index, samples, first t, last t, sum r^2 (n)]
+        self._rms_acc = np.concatenate([[-1.0, 0.0, np.nan, np.nan], np.zeros(self.n)])
+        self._rms_alarmed = np.zeros(self.n, dtype=bool)
+        self._first_output_s = np.nan  # start of the monitor's first output (the estimator's start-up)
 
     # ---------------------------------------------------------------- processing
     def process(self, batch: SampleBatch) -> StepResults:
@@ -365,6 +413,8 @@ class RobotMonitor:
             self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled)
         self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
         self._wear_for(out, t_end, results)
+        self._mode_for(out, results)
+        self._residual_drift_for(out, rms, results)
         self._release_events(t_end, results)
         self._health_for(out, rms, t_end, results)
 
@@ -652,6 +702,151 @@ class RobotMonitor:
                 }
             )
 
+    # ---------------------------------------------------------------- model drift
+    def _build_welch(self, dt_s: float) -> WelchAccumulator:
+        s = self.settings
+        welch = WelchSettings.for_window(
+            segment_s=s.mode_segment_s, window_s=s.mode_window_s, dt_s=dt_s, band_hz=s.mode_band_hz
+        )
+        return WelchAccumulator(self.n, welch)
+
+    def _mode_for(self, out: TrackerOutput, results: StepResults) -> None:
+        """Add this output's innovation to the Welch sum; rows (and a drift event) for every estimate it completes."""
+        if not self.settings.mode_tracking:
+            return
+        r = out.prior_residual
+        if not np.all(np.isfinite(r)):
+            return  # left out: the step to the next output is a gap, so no segment spans this one
+        if self._welch is None:
+            if out.t.shape[0] < 3:
+                return
+            self._welch = self._build_welch(float(np.median(np.diff(out.t))))  # the stream's own sample period
+        for estimate in self._welch.update(out.t, r):
+            self._mode_rows(estimate, results)
+
+    def _mode_rows(self, e: WelchEstimate, results: StepResults) -> None:
+        m = e.mode
+        if m.quality is ModeQuality.NONE:
+            return  # no peak above the floor: nothing to store (a frequency of NaN is no estimate)
+        good = m.quality is ModeQuality.GOOD
+        df = float(e.f[1] - e.f[0])
+        f_std = m.frequency_std_hz if np.isfinite(m.frequency_std_hz) else df  # no fit std: one bin
+        z_std = m.damping_std if np.isfinite(m.damping_std) else m.damping_ratio
+        for name, value, std in (
+            ("mode_frequency_hz", m.frequency_hz, f_std),
+            ("mode_damping_ratio", m.damping_ratio, z_std),
+        ):
+            results.estimates.append(
+                {"time_s": e.end_s, "parameter": name, "value": float(value), "std": float(std), "identifiable": good}
+            )
+        if not good:
+            return
+        s = self.settings
+        if self._mode_reference.shape[0] < s.mode_reference_estimates:
+            self._mode_reference = np.vstack([self._mode_reference, [[m.frequency_hz, m.damping_ratio]]])
+            return
+        f_ref, zeta_ref = (float(v) for v in np.median(self._mode_reference, axis=0))
+        drop = (f_ref - m.frequency_hz) / f_ref  # relative fall of the natural frequency
+        if self._mode_alarmed:
+            self._mode_alarmed = drop >= 0.5 * s.mode_drift_fraction  # re-armed once back within half the limit
+            return
+        if drop <= s.mode_drift_fraction:
+            return
+        self._mode_alarmed = True
+        results.events.append(
+            {
+                "kind": "drift",
+                "start_s": e.start_s,
+                "end_s": e.end_s,
+                "severity": "medium",
+                "summary": (
+                    f"model drift: the structural mode fell from {f_ref:.2f} to {m.frequency_hz:.2f} Hz "
+                    f"({100 * drop:.1f} %, more than {100 * s.mode_drift_fraction:.0f} %; damping ratio "
+                    f"{zeta_ref:.3f} then, {m.damping_ratio:.3f} now): a stiffness has fallen, look for a loosening "
+                    "joint or a cracked rod"
+                ),
+                "figures": {
+                    "drift": "structural_mode",
+                    "frequency_before_hz": f_ref,
+                    "frequency_after_hz": m.frequency_hz,
+                    "frequency_after_std_hz": float(f_std),
+                    "frequency_drop_fraction": drop,
+                    "drop_limit_fraction": s.mode_drift_fraction,
+                    "damping_ratio_before": zeta_ref,
+                    "damping_ratio_after": m.damping_ratio,
+                    "reference_estimates_count": int(self._mode_reference.shape[0]),
+                    "segments_count": e.segments,
+                },
+                "evidence_start_s": e.start_s,
+                "evidence_end_s": e.end_s,
+                "evidence": None,
+                "source_seq": self._last_seq,
+            }
+        )
+
+    def _residual_drift_for(self, out: TrackerOutput, rms: Array, results: StepResults) -> None:
+        """Add this output's innovation to the RMS window (the wear window's grid); close it when past it."""
+        t0, t1 = float(out.t[0]), float(out.t[-1])
+        if np.isnan(self._first_output_s):
+            self._first_output_s = t0
+        if t1 < self._first_output_s + self.settings.residual_drift_settle_s:
+            return  # the filter is still converging from its prior: its innovation says little about the model
+        index = float(np.floor(t1 / self.settings.wear_window_s))
+        acc = self._rms_acc
+        if acc[0] >= 0 and index != acc[0] and acc[1] > 0:
+            self._close_rms_window(acc, results)
+            acc = np.concatenate([[-1.0, 0.0, np.nan, np.nan], np.zeros(self.n)])
+        if acc[1] == 0:
+            acc[2] = t0
+        acc[0] = index
+        acc[1] += out.n_samples
+        acc[3] = t1
+        acc[4:] += rms**2 * out.n_samples  # sum r^2 from the output's mean square
+        self._rms_acc = acc
+
+    def _close_rms_window(self, acc: Array, results: StepResults) -> None:
+        s = self.settings
+        rms = np.sqrt(acc[4:] / acc[1])  # RMS of the innovation over the window [N m | N]
+        noise = np.asarray(self.baseline.noise_std, dtype=float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(noise > 0.0, rms / noise, np.nan)
+        for i in range(self.n):  # loop over actuators
+            if self._rms_alarmed[i]:
+                self._rms_alarmed[i] = not ratio[i] < s.residual_drift_clear_ratio
+                continue
+            if not ratio[i] > s.residual_drift_ratio:
+                continue
+            self._rms_alarmed[i] = True
+            minutes = (acc[3] - acc[2]) / 60.0
+            results.events.append(
+                {
+                    "kind": "drift",
+                    "start_s": float(acc[2]),
+                    "end_s": float(acc[3]),
+                    "severity": "medium",
+                    "summary": (
+                        f"model drift: actuator {i + 1}'s effort residual RMS was {ratio[i]:.1f} times the baseline "
+                        f"noise over {minutes:.1f} min ({rms[i]:.3g} against {noise[i]:.3g}; limit "
+                        f"{s.residual_drift_ratio:.1f} times): the model no longer fits this drive, look for lost "
+                        "calibration or grown backlash"
+                    ),
+                    "figures": {
+                        "drift": "residual_rms",
+                        "actuator": i + 1,
+                        "residual_rms": float(rms[i]),
+                        "baseline_noise_std": float(noise[i]),
+                        "rms_to_noise_ratio": float(ratio[i]),
+                        "limit_ratio": s.residual_drift_ratio,
+                        "window_s": float(acc[3] - acc[2]),
+                        "samples_count": int(acc[1]),
+                    },
+                    "evidence_start_s": float(acc[2]),
+                    "evidence_end_s": float(acc[3]),
+                    "evidence": None,
+                    "source_seq": self._last_seq,
+                }
+            )
+
     def flush_events(self) -> StepResults:
         """At the end of a stream: the collisions still waiting for the end of their evidence window."""
         results = StepResults(self.robot_id)
@@ -780,6 +975,14 @@ class RobotMonitor:
         state["wear/built"] = np.array(self._wear is not None)
         state["x_prior"] = self._x_prior.copy()
         state["std_prior"] = self._std_prior.copy()
+        state["modes/dt_s"] = np.array(np.nan if self._welch is None else self._welch.settings.dt_s)
+        if self._welch is not None:
+            state.update(self._welch.save("modes/"))
+        state["modes/reference"] = self._mode_reference.copy()
+        state["modes/alarmed"] = np.array(self._mode_alarmed)
+        state["residual_drift/acc"] = self._rms_acc.copy()
+        state["residual_drift/alarmed"] = self._rms_alarmed.copy()
+        state["residual_drift/first_output_s"] = np.array(self._first_output_s)
         return state
 
     def restore_state(self, state: dict[str, np.ndarray]) -> None:
@@ -832,6 +1035,20 @@ class RobotMonitor:
                     )
         self._x_prior = np.asarray(state["x_prior"], dtype=float).copy()
         self._std_prior = np.asarray(state["std_prior"], dtype=float).copy()
+        # checkpoints written before the drift watches existed lack these keys: they start afresh
+        dt_s = float(state.get("modes/dt_s", np.nan))
+        self._welch = None
+        if np.isfinite(dt_s) and self.settings.mode_tracking:
+            self._welch = self._build_welch(dt_s)
+            self._welch.restore(state, "modes/")
+        reference = np.asarray(state.get("modes/reference", np.zeros((0, 2))), dtype=float)
+        self._mode_reference = reference.reshape(-1, 2).copy()
+        self._mode_alarmed = bool(state.get("modes/alarmed", False))
+        fresh = np.concatenate([[-1.0, 0.0, np.nan, np.nan], np.zeros(self.n)])
+        self._rms_acc = np.asarray(state.get("residual_drift/acc", fresh), dtype=float).copy()
+        self._rms_alarmed = np.asarray(state.get("residual_drift/alarmed", np.zeros(self.n, dtype=bool)), dtype=bool)
+        self._rms_alarmed = self._rms_alarmed.copy()
+        self._first_output_s = float(state.get("residual_drift/first_output_s", np.nan))
 
 
 def _same_layout_runs(batches: list[SampleBatch]) -> list[list[SampleBatch]]:

@@ -10,12 +10,32 @@ a viscously damped SDOF system):
 
 Steps: Welch PSD (scipy.signal.welch, Hann window) summed over actuators; the largest peak in the band;
 a start from the half-power bandwidth, zeta_0 = (f_2 - f_1) / (2 f_peak) (Ewins sec. 4.3); then a
-least-squares fit of (2) in log PSD (scipy.optimize.least_squares) over the peak's neighbourhood.
+least-squares fit of (2) in log PSD (scipy.optimize.least_squares) over the peak's neighbourhood. The
+standard deviations of f_n and zeta come from the fit's Jacobian at the solution,
+``cov = B s^2 (J^T J)^-1`` with ``s^2`` the residual variance (nonlinear least squares, Seber and Wild,
+"Nonlinear Regression", 1989, sec. 2.1; from memory); neighbouring bins of a windowed spectrum are
+correlated, so the fitted bins count as ``m / B`` independent ones, B the window's equivalent noise bandwidth
+in bins (1.5 for Hann: Harris, "On the use of windows for harmonic analysis with the discrete Fourier
+transform", Proc. IEEE 66(1), 1978, table 1).
+
+Live, :class:`WelchAccumulator` computes the same Welch PSD incrementally (Welch, "The use of fast Fourier
+transform for the estimation of power spectra", IEEE Trans. Audio Electroacoust. 15(2), 1967): each
+uniformly sampled segment of ``L`` samples, with a hop of ``L - L // 2`` (50 % overlap), gives the one-sided
+periodogram
+
+    P(f_j) = g_j |sum_k w_k (x_k - mean x) e^{-2 pi i j k / L}|^2 / (fs sum_k w_k^2)                 (3)
+
+(``w`` the periodic Hann window, ``g_j = 2`` except at 0 Hz and, for even L, at Nyquist, where it is 1;
+the density scaling of scipy.signal.welch), summed over actuators and added to a running sum; after a set
+number of segments the sum's mean is the Welch PSD of that stretch, and the sum restarts. Only the open
+segment (fewer than L samples) and the sum are carried, so the saved state stays small.
 
 Symbols
 -------
 r      : (N, n) effort residual [N m | N], uniformly sampled at fs_hz
+t      : (N,) sample times [s]
 f, S   : (F,) frequencies [Hz] and (F,) PSD [unit^2/Hz]
+L      : samples per Welch segment (``nperseg``); F = L // 2 + 1
 f_n    : natural frequency [Hz];  zeta : damping ratio [-]
 
 Damping is harder than frequency: the half-power bandwidth 2 zeta f_n spans few PSD bins, the Hann
@@ -32,7 +52,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 from scipy.optimize import least_squares
-from scipy.signal import welch
+from scipy.signal import get_window, welch
 
 from shadow.errors import ConfigurationError, ShapeError, TimeOrderError, expect_finite, expect_shape
 
@@ -55,6 +75,7 @@ class ModeEstimate:
     half_power_damping : zeta_0 from the half-power bandwidth (the fit's start) [-]
     prominence : peak PSD over the noise floor [-]
     quality : :class:`ModeQuality`
+    frequency_std_hz, damping_std : standard deviations of f_n [Hz] and zeta [-] from the fit (NaN without one)
     """
 
     frequency_hz: float
@@ -62,6 +83,8 @@ class ModeEstimate:
     half_power_damping: float
     prominence: float
     quality: ModeQuality
+    frequency_std_hz: float = np.nan
+    damping_std: float = np.nan
 
 
 def sdof_psd(f: Array, A: float, f_n: float, zeta: float, c: float) -> Array:
@@ -107,6 +130,7 @@ def estimate_mode(
     min_bins_per_bandwidth: float = 3.0,
     damping_bounds: tuple[float, float] = (1e-4, 0.5),
     max_fit_evaluations: int = 2000,
+    window_enbw_bins: float = 1.5,
 ) -> ModeEstimate:
     """Fit (2) to the largest peak of S in band_hz.
 
@@ -119,6 +143,7 @@ def estimate_mode(
     min_bins_per_bandwidth : fewer PSD bins across 2 zeta f_n make the estimate WEAK
     damping_bounds : bounds of zeta in the fit
     max_fit_evaluations : cap of the least-squares function evaluations
+    window_enbw_bins : B, equivalent noise bandwidth of the spectrum's window in bins (Hann: 1.5), for the stds
     """
     expect_shape("S", S, f.shape)
     in_band = np.flatnonzero((f >= band_hz[0]) & (f <= band_hz[1]))
@@ -155,7 +180,21 @@ def estimate_mode(
     if not sol.success:
         return ModeEstimate(np.nan, np.nan, zeta0, prominence, ModeQuality.NONE)
     quality = ModeQuality.GOOD if (resolved and not at_bound) else ModeQuality.WEAK
-    return ModeEstimate(f_n, zeta, zeta0, prominence, quality)
+    f_std, zeta_std = _fit_std(sol.jac, sol.fun, zeta, window_enbw_bins)
+    return ModeEstimate(f_n, zeta, zeta0, prominence, quality, f_std, zeta_std)
+
+
+def _fit_std(jac: Array, fun: Array, zeta: float, enbw_bins: float) -> tuple[float, float]:
+    """(std f_n [Hz], std zeta) from ``cov = B s^2 (J^T J)^-1``, ``s^2 = sum r^2 / (m - 4)``; zeta = exp(x_2)."""
+    m, p = jac.shape
+    if m <= p:
+        return np.nan, np.nan
+    s2 = enbw_bins * float(fun @ fun) / (m - p)  # residual variance of the log-PSD fit, per independent bin
+    try:
+        cov = s2 * np.linalg.pinv(jac.T @ jac)  # pinv: a bound-active parameter may leave J^T J singular
+    except np.linalg.LinAlgError:
+        return np.nan, np.nan
+    return float(np.sqrt(max(cov[1, 1], 0.0))), float(zeta * np.sqrt(max(cov[2, 2], 0.0)))  # d zeta = zeta d x_2
 
 
 def mode_from_residual(
@@ -248,3 +287,186 @@ class ModeTracker:
         keep = self._t >= self._next_start_s  # samples still needed by a future window
         self._t, self._r = self._t[keep], self._r[keep]
         return track
+
+
+# ------------------------------------------------------------------------------------------ live Welch
+@dataclass(frozen=True, slots=True)
+class WelchSettings:
+    """Knobs of :class:`WelchAccumulator`.
+
+    nperseg : L, samples per segment (>= 16); bins are fs / L apart
+    segments_per_estimate : segments averaged into one PSD (>= 1)
+    dt_s : nominal sample period [s]; a step over ``max_step_ratio`` times it ends the open segment
+    band_hz : search band of :func:`estimate_mode` [Hz]
+    max_step_ratio : largest step, in nominal periods, still counted as uniform sampling
+    """
+
+    nperseg: int
+    segments_per_estimate: int
+    dt_s: float
+    band_hz: tuple[float, float] = (5.0, 80.0)
+    max_step_ratio: float = 1.5
+
+    def __post_init__(self) -> None:
+        if self.nperseg < 16:
+            raise ConfigurationError(f"nperseg: need at least 16 samples per segment, got {self.nperseg!r}")
+        if self.segments_per_estimate < 1:
+            raise ConfigurationError(f"segments_per_estimate: must be >= 1, got {self.segments_per_estimate!r}")
+        if not self.dt_s > 0.0:
+            raise ConfigurationError(f"dt_s: must be positive, got {self.dt_s!r}")
+        if not self.max_step_ratio > 1.0:
+            raise ConfigurationError(f"max_step_ratio: must be above 1, got {self.max_step_ratio!r}")
+        if not 0.0 <= self.band_hz[0] < self.band_hz[1]:
+            raise ConfigurationError(f"band_hz: need 0 <= low < high, got {self.band_hz!r}")
+
+    @property
+    def hop(self) -> int:
+        """Samples between segment starts: L - L // 2 (the overlap of scipy.signal.welch's default)."""
+        return self.nperseg - self.nperseg // 2
+
+    @classmethod
+    def for_window(
+        cls, *, segment_s: float, window_s: float, dt_s: float, band_hz: tuple[float, float] = (5.0, 80.0)
+    ) -> WelchSettings:
+        """Settings from durations: L = round(segment_s / dt_s) samples, and as many segments as a continuous
+        ``window_s`` of stream holds, ``floor((window_s / dt_s - L) / hop) + 1`` (at least 1)."""
+        if not (segment_s > 0.0 and window_s > 0.0 and dt_s > 0.0):
+            raise ConfigurationError("segment_s, window_s and dt_s must be positive")
+        nperseg = int(round(segment_s / dt_s))
+        hop = nperseg - nperseg // 2
+        segments = max(int(np.floor((window_s / dt_s - nperseg) / hop + 1e-9)) + 1, 1)
+        return cls(nperseg=nperseg, segments_per_estimate=segments, dt_s=dt_s, band_hz=band_hz)
+
+
+@dataclass(frozen=True, slots=True)
+class WelchEstimate:
+    """One completed Welch average and the mode fitted to it.
+
+    start_s, end_s : first sample of its first segment and last sample of its last segment [s]
+    segments : segments averaged
+    f, S : (F,) frequencies [Hz] and the mean PSD, summed over actuators [unit^2/Hz]
+    mode : :class:`ModeEstimate` of S (:func:`estimate_mode` over the settings' band)
+    """
+
+    start_s: float
+    end_s: float
+    segments: int
+    f: Array
+    S: Array
+    mode: ModeEstimate
+
+
+class WelchAccumulator:
+    """Welch PSD of a residual stream, summed over actuators, built segment by segment across batches.
+
+    The running state is the open segment (fewer than L samples), the PSD sum (F,) and three numbers; see
+    the module docstring, equation (3). A step longer than ``max_step_ratio`` nominal periods (a gap in the
+    stream) drops the open segment: every segment is uniformly sampled. The sum does not restart at a gap
+    (segments on either side average as well as any two), only after ``segments_per_estimate`` segments.
+    """
+
+    def __init__(self, n_channels: int, settings: WelchSettings) -> None:
+        if n_channels < 1:
+            raise ConfigurationError(f"n_channels: must be >= 1, got {n_channels!r}")
+        self.n = n_channels
+        self.settings = settings
+        L = settings.nperseg
+        self._window = get_window("hann", L)  # periodic Hann, as scipy.signal.welch
+        self._scale = 1.0 / (np.sum(self._window**2) / settings.dt_s)  # density scaling 1 / (fs sum w^2)
+        self._gain = np.full(L // 2 + 1, 2.0)  # one-sided: twice every bin but 0 Hz (and Nyquist for even L)
+        self._gain[0] = 1.0
+        if L % 2 == 0:
+            self._gain[-1] = 1.0
+        self.f = np.fft.rfftfreq(L, settings.dt_s)
+        self._part_t = np.zeros(0)
+        self._part_r = np.zeros((0, n_channels))
+        self._sum = np.zeros(self.f.shape[0])
+        self._segments = 0
+        self._start_s = np.nan  # first sample of the sum's first segment
+        self._end_s = np.nan  # last sample of its latest segment
+        self._last_t_s = np.nan  # newest sample seen
+
+    @property
+    def segments(self) -> int:
+        """Segments in the running sum."""
+        return self._segments
+
+    def periodograms(self, r: Array) -> Array:
+        """Periodograms (3) of the segments of r (K, L, n), summed over channels: (K, F)."""
+        x = r - r.mean(axis=1, keepdims=True)  # detrend="constant": each segment's own mean
+        X = np.fft.rfft(x * self._window[None, :, None], axis=1)  # (K, F, n)
+        return (X.real**2 + X.imag**2).sum(axis=2) * (self._scale * self._gain)  # |X|^2 g / (fs sum w^2)
+
+    def update(self, t: Array, r: Array) -> list[WelchEstimate]:
+        """Add a batch (t (N,) [s], r (N, n)); return the estimates it completed, oldest first."""
+        expect_shape("t", t, (None,))
+        expect_shape("r", r, (t.shape[0], self.n))
+        expect_finite("t", t)
+        expect_finite("r", r)
+        if t.shape[0] == 0:
+            return []
+        if np.any(np.diff(t) <= 0.0):
+            raise TimeOrderError("t: sample times must be strictly increasing")
+        if t[0] <= self._last_t_s:  # False while NaN (nothing seen yet)
+            raise TimeOrderError(f"t: batch starts at {t[0]!r} s, not after {self._last_t_s!r} s")
+        s = self.settings
+        T = np.concatenate((self._part_t, t))
+        R = np.concatenate((self._part_r, r))
+        self._last_t_s = float(t[-1])
+        breaks = np.flatnonzero(np.diff(T) > s.max_step_ratio * s.dt_s) + 1  # a gap: the run before it ends
+        bounds = [0, *breaks.tolist(), T.shape[0]]
+        done: list[WelchEstimate] = []
+        L, hop = s.nperseg, s.hop
+        for a, b in zip(bounds[:-1], bounds[1:], strict=True):  # loop over uniformly sampled runs (gaps are rare)
+            count = (b - a - L) // hop + 1 if b - a >= L else 0  # complete segments in the run
+            if count:
+                starts = a + hop * np.arange(count)
+                segs = np.lib.stride_tricks.sliding_window_view(R[a:b], L, axis=0)[::hop][:count]  # (K, n, L)
+                P = self.periodograms(np.swapaxes(segs, 1, 2))
+                self._add(P, T[starts], T[starts + L - 1], done)
+            if b == T.shape[0]:  # the last run: its tail is the open segment
+                keep = a + hop * count if count else a
+                self._part_t, self._part_r = T[keep:b].copy(), R[keep:b].copy()
+        return done
+
+    def _add(self, P: Array, seg_start: Array, seg_end: Array, done: list[WelchEstimate]) -> None:
+        """Add periodograms P (K, F) in order, closing an estimate whenever the sum is full."""
+        s = self.settings
+        i = 0
+        while i < P.shape[0]:  # loop over completed estimates, each chunk summed at once
+            if self._segments == 0:
+                self._start_s = float(seg_start[i])
+            take = min(s.segments_per_estimate - self._segments, P.shape[0] - i)
+            self._sum += P[i : i + take].sum(axis=0)
+            self._segments += take
+            self._end_s = float(seg_end[i + take - 1])
+            i += take
+            if self._segments == s.segments_per_estimate:
+                S = self._sum / self._segments  # Welch: mean of the periodograms
+                mode = estimate_mode(self.f, S, band_hz=s.band_hz)
+                done.append(WelchEstimate(self._start_s, self._end_s, self._segments, self.f.copy(), S, mode))
+                self._sum = np.zeros_like(self._sum)
+                self._segments = 0
+                self._start_s = self._end_s = np.nan
+
+    def save(self, prefix: str) -> dict[str, np.ndarray]:
+        """The running state as arrays (exact)."""
+        return {
+            f"{prefix}part_t": self._part_t.copy(),
+            f"{prefix}part_r": self._part_r.copy(),
+            f"{prefix}psd_sum": self._sum.copy(),
+            f"{prefix}segments": np.array(self._segments),
+            f"{prefix}times_s": np.array([self._start_s, self._end_s, self._last_t_s]),
+        }
+
+    def restore(self, state: dict[str, np.ndarray], prefix: str) -> None:
+        """Resume from :meth:`save`'s arrays; a PSD sum of another length (other settings) restarts the sum."""
+        self._part_t = np.asarray(state[f"{prefix}part_t"], dtype=float).copy()
+        self._part_r = np.asarray(state[f"{prefix}part_r"], dtype=float).reshape(-1, self.n).copy()
+        self._start_s, self._end_s, self._last_t_s = (float(v) for v in state[f"{prefix}times_s"])
+        psd_sum = np.asarray(state[f"{prefix}psd_sum"], dtype=float)
+        self._sum, self._segments = psd_sum.copy(), int(state[f"{prefix}segments"])
+        if psd_sum.shape != self.f.shape or self._part_t.shape[0] >= self.settings.nperseg:
+            self._part_t, self._part_r = np.zeros(0), np.zeros((0, self.n))
+            self._sum, self._segments = np.zeros_like(self.f), 0
+            self._start_s = self._end_s = np.nan
