@@ -9,7 +9,7 @@ Routes (all GET; HEAD answers the same without a body; every other method gets 4
     /api/v1/robots/{site}/{cell}/{robot}/unmonitored       intervals without monitoring, with their cause
     /api/v1/events                                         events filtered by robot, kind and time
     /api/v1/events/{event_id}                              one event with its evidence window
-    /api/v1/status                                         service status: broker sessions, lag, queues, dead letters
+    /api/v1/status                                         service status: sessions, lag, queues, dead letters, pool
     /metrics                                               Prometheus text format
     /health/live                                           liveness probe (no token needed)
 
@@ -94,19 +94,10 @@ def robot_id_of(site: str, cell: str, robot: str, store: SqlStore) -> str:
     return rid
 
 
-def downsample(rows: list[dict[str, Any]], every_s: float | None, key: tuple[str, ...]) -> list[dict[str, Any]]:
-    """Keep the last row of each ``every_s`` step per series (``key`` columns name the series)."""
-    if every_s is None:
-        return rows
-    kept: dict[tuple[Any, ...], dict[str, Any]] = {}
-    for r in rows:
-        kept[(int(r["time_s"] // every_s), *(r[k] for k in key))] = r
-    return sorted(kept.values(), key=lambda r: (r["time_s"], *(r[k] for k in key)))
-
-
 def page(rows: list[Any], limit: int, offset: int) -> tuple[list[Any], out.PageOut]:
-    chunk = rows[offset : offset + limit]
-    more = offset + limit < len(rows)
+    """The page of ``rows`` read from ``offset`` on, at most ``limit + 1`` (one more tells another page follows)."""
+    chunk = rows[:limit]
+    more = len(rows) > limit
     return chunk, out.PageOut(
         limit=limit, offset=offset, returned=len(chunk), next_offset=offset + limit if more else None
     )
@@ -150,8 +141,11 @@ ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
 }
 router = APIRouter(prefix="/api/v1", responses=ERROR_RESPONSES)
 Limit = Annotated[int, Query(ge=1, le=MAX_PAGE, description="rows per page")]
-Offset = Annotated[int, Query(ge=0, description="rows to skip")]
-Every = Annotated[float | None, Query(gt=0, description="downsampling step [s]: the last point of each step is kept")]
+Offset = Annotated[int, Query(ge=0, le=100 * MAX_PAGE, description="rows to skip")]
+Every = Annotated[
+    float | None,
+    Query(gt=0, description="downsampling step [s]: the last point of each step k*every <= t < (k+1)*every is kept"),
+]
 Start = Annotated[str | None, Query(description="ISO 8601 start (default: end minus one hour)")]
 End = Annotated[str | None, Query(description="ISO 8601 end (default: now)")]
 
@@ -201,8 +195,10 @@ def estimate_series(
 ) -> out.EstimateSeriesOut:
     rid = robot_id_of(site, cell, robot, store)
     start_s, end_s = time_range(start, end)
-    rows = store.estimates(rid, start_s=start_s, end_s=end_s, parameters=parameter, limit=10 * MAX_PAGE)
-    chunk, p = page(downsample(rows, every, ("parameter",)), limit, offset)
+    rows = store.estimates(
+        rid, start_s=start_s, end_s=end_s, parameters=parameter, every_s=every, limit=limit + 1, offset=offset
+    )
+    chunk, p = page(rows, limit, offset)
     points = [
         out.EstimatePointOut(
             time=out.iso(r["time_s"]) or "",
@@ -232,8 +228,8 @@ def residual_series(
 ) -> out.ResidualSeriesOut:
     rid = robot_id_of(site, cell, robot, store)
     start_s, end_s = time_range(start, end)
-    rows = store.residual_aggregates(rid, start_s=start_s, end_s=end_s, limit=10 * MAX_PAGE)
-    chunk, p = page(downsample(rows, every, ("actuator",)), limit, offset)
+    rows = store.residual_aggregates(rid, start_s=start_s, end_s=end_s, every_s=every, limit=limit + 1, offset=offset)
+    chunk, p = page(rows, limit, offset)
     points = [
         out.ResidualPointOut(
             time=out.iso(r["time_s"]) or "",
@@ -280,7 +276,7 @@ def list_events(
     start_s = parse_time("start", start, 0.0)
     end_s = parse_time("end", end, time.time() + 86400.0)
     rows = store.events(robot_id=robot_id, kind=kind, start_s=start_s, end_s=end_s, limit=offset + limit + 1)
-    chunk, p = page(rows, limit, offset)
+    chunk, p = page(rows[offset:], limit, offset)
     return out.EventListOut(page=p, events=[event_out(r) for r in chunk])
 
 
@@ -331,6 +327,7 @@ def service_status(request: Request, store: StoreDep) -> out.StatusOut:
         inbox_depth=status.get("inbox_depth", {}),
         dead_letters_by_reason=store.dead_letter_counts(),
         robots=robots,
+        pool=None if status.get("pool") is None else out.PoolStatusOut(**status["pool"]),
     )
 
 

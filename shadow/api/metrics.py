@@ -105,6 +105,39 @@ class StoreCollector(Collector):
         yield messages
         yield samples
         yield lag
+        if status.get("pool") is not None:
+            yield from pool_metrics(status["pool"])
+
+
+POOL_COUNTERS = (  # (status key, metric name without _total, help)
+    ("lease_renewals", "shadow_pool_lease_renewals", "leases extended, one per robot per heartbeat"),
+    ("robots_claimed", "shadow_pool_robots_claimed", "robots handed over to this worker"),
+    ("robots_released", "shadow_pool_robots_released", "robots this worker gave up cleanly"),
+    ("leases_lost", "shadow_pool_leases_lost", "leases taken over by another worker or refused by the fence"),
+    ("robots_unreadable", "shadow_pool_robots_unreadable", "robots given up because their session could not connect"),
+    ("broker_cutoffs", "shadow_pool_broker_cutoffs", "times this worker left the pool, the broker out of reach"),
+    ("database_failures", "shadow_pool_database_failures", "heartbeats that could not reach the database"),
+    ("fenced_writes_refused", "shadow_pool_fenced_writes_refused", "writes refused: the robot's lease had moved on"),
+)
+POOL_GAUGES = (
+    ("robots_held", "shadow_pool_robots_held", "robots whose lease this worker holds"),
+    ("live_workers", "shadow_pool_live_workers", "live workers at the last heartbeat, this one included"),
+    ("in_pool", "shadow_pool_member", "1 while this worker is in the pool"),
+    ("broker_reachable", "shadow_pool_broker_reachable", "1 while this worker's own broker connection is up"),
+)
+
+
+def pool_metrics(pool: dict[str, Any]) -> Iterator[Metric]:
+    """One worker's pool counters, labelled with its worker id."""
+    labels = [str(pool["worker_id"])]
+    for key, name, text in POOL_COUNTERS:
+        counter = CounterMetricFamily(name, text, labels=["worker_id"])  # exposed as name_total
+        counter.add_metric(labels, float(pool[key]))
+        yield counter
+    for key, name, text in POOL_GAUGES:
+        gauge = GaugeMetricFamily(name, text, labels=["worker_id"])
+        gauge.add_metric(labels, float(pool[key]))
+        yield gauge
 
 
 def metrics_renderer(

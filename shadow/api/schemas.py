@@ -158,6 +158,24 @@ class RobotCountersOut(BaseModel):
     unwritten_steps: int
 
 
+class PoolStatusOut(BaseModel):
+    """This worker's part in a worker pool; counts since the worker started."""
+
+    worker_id: str
+    in_pool: bool = Field(description="False while the worker has left the pool because the broker is out of reach")
+    broker_reachable: bool = Field(description="the worker's own connection to the broker is up")
+    live_workers: int = Field(description="live workers at the last heartbeat, this one included")
+    robots_held: int = Field(description="robots whose lease this worker holds (they are in robots)")
+    lease_renewals: int = Field(description="leases extended, one per robot per heartbeat")
+    robots_claimed: int = Field(description="hand-overs to this worker")
+    robots_released: int = Field(description="hand-overs from this worker: rebalancing, shutdown, broker out of reach")
+    leases_lost: int = Field(description="leases found taken over by another worker, or refused by the fence")
+    robots_unreadable: int = Field(description="robots given up because their own session could not connect")
+    broker_cutoffs: int = Field(description="times the worker left the pool because the broker was out of reach")
+    database_failures: int = Field(description="heartbeats that could not reach the database")
+    fenced_writes_refused: int = Field(description="writes refused because the robot's lease had moved on")
+
+
 class StatusOut(BaseModel):
     notice: str = ADVISORY_NOTICE
     version: str
@@ -166,3 +184,4 @@ class StatusOut(BaseModel):
     inbox_depth: dict[str, int]
     dead_letters_by_reason: dict[str, int]
     robots: list[RobotCountersOut]
+    pool: PoolStatusOut | None = Field(default=None, description="None unless the service is a pool worker")

@@ -27,7 +27,7 @@ from shadow.cli.commission import read_baseline_file
 from shadow.config import RobotEntry, ServiceConfig, check_worker_name, load_config
 from shadow.errors import ConfigurationError
 from shadow.estimation.baseline import Baseline
-from shadow.ingest.mqtt import RobotSubscription
+from shadow.ingest.mqtt import BrokerProbe, RobotSubscription
 from shadow.ingest.topics import TopicLayout
 from shadow.ingest.wire import PlausibilityLimits
 from shadow.monitoring import RobotMonitor, default_settings
@@ -126,9 +126,25 @@ def build_pool_worker(config: ServiceConfig, store: SqlStore, worker: str) -> tu
     service = Service(store, [], [], raw_retention_s=config.raw_retention_s)
     leases = LeaseTable(store.engine, worker, lease_s=config.lease_s)
     member = PoolMember(
-        leases, service, [e.robot_id for e in config.robots], followers.follow, heartbeat_s=config.heartbeat_s
+        leases,
+        service,
+        [e.robot_id for e in config.robots],
+        followers.follow,
+        heartbeat_s=config.heartbeat_s,
+        broker=broker_probe(config, worker),
     )
     return service, member
+
+
+def broker_probe(config: ServiceConfig, worker: str) -> BrokerProbe:
+    """The worker's own connection to the broker, telling it whether it can read any robot at all.
+
+    Its client id ``<client_id_prefix>.worker.<name>`` is never a robot's (after the prefix those have no dot). Its
+    keepalive is half a lease (at least 5 s, at most ``mqtt.keepalive_s``), so even a silent network cut
+    is noticed within about a lease length, and it retries at least every 5 s.
+    """
+    keepalive_s = max(5, min(config.mqtt.keepalive_s, round(config.lease_s / 2)))
+    return BrokerProbe(config.mqtt, f"{config.mqtt.client_id_prefix}.worker.{worker}", keepalive_s=keepalive_s)
 
 
 def pool_session_settings(config: ServiceConfig) -> dict[str, str]:
@@ -141,18 +157,23 @@ def pool_session_settings(config: ServiceConfig) -> dict[str, str]:
     return {"idle_in_transaction_session_timeout": str(max(100, int(config.lease_s * 500)))}
 
 
-def status_snapshot(service: Service) -> dict[str, Any]:
-    """What the status endpoint and the metrics read (plain numbers)."""
+def status_snapshot(service: Service, member: PoolMember | None = None) -> dict[str, Any]:
+    """What the status endpoint and the metrics read (plain numbers); ``pool`` only for a pool worker."""
     status: ServiceStatus = service.status
-    return {
+    snapshot = {
         "started_at_s": status.started_at_s,
         "robots": {rid: vars(s).copy() for rid, s in status.robots.items()},
         "broker_connected": {sub.robot_id: sub.connected.is_set() for sub in service.subscriptions},
         "inbox_depth": {sub.robot_id: sub.inbox.qsize() for sub in service.subscriptions},
     }
+    if member is not None:
+        snapshot["pool"] = member.status()
+    return snapshot
 
 
-def start_api(config: ServiceConfig, store: SqlStore, service: Service) -> tuple[Any, threading.Thread]:
+def start_api(
+    config: ServiceConfig, store: SqlStore, service: Service, member: PoolMember | None = None
+) -> tuple[Any, threading.Thread]:
     """uvicorn in a thread, serving the read-only app."""
     import uvicorn
 
@@ -161,7 +182,7 @@ def start_api(config: ServiceConfig, store: SqlStore, service: Service) -> tuple
 
     app = create_app(
         store,
-        status_provider=lambda: status_snapshot(service),
+        status_provider=lambda: status_snapshot(service, member),
         guard=GuardSettings(token_digests=config.api_token_digests, rate_per_s=config.api_rate_per_s),
     )
     server = uvicorn.Server(
@@ -198,7 +219,7 @@ def run(args: argparse.Namespace) -> int:
         member.start()
     server = None
     if not args.no_api:
-        server, _ = start_api(config, store, service)
+        server, _ = start_api(config, store, service, member)
         print(f"API on http://{config.api_host}:{config.api_port}/ (read-only)", flush=True)
     if member is None:
         print(f"following {len(config.robots)} robot(s) via {config.mqtt.describe()}", flush=True)

@@ -27,7 +27,13 @@ message would come too late. The time the thread waited is counted in ``inbox_fu
 Acknowledgements belong to a connection: packet ids restart per connection and a broker resends a
 session's unacknowledged messages with their old ids, so a message taken from the inbox after a
 reconnect must not acknowledge (or be confused with) the resent copy. Each message carries the number
-of the connection it came on, and :meth:`acknowledge` ignores messages of an earlier one.
+of the connection it came on, and :meth:`acknowledge` ignores messages of an earlier one. An
+acknowledgement that cannot be sent (the connection dropped, or the session was stopped) is counted in
+``acks_unsent`` and logged once per connection: the broker delivers those messages again, and the
+sequence numbers drop what was already stored.
+
+:class:`BrokerProbe` is one plain connection (no session, no subscription) that tells a pool worker
+whether it can reach the broker at all, also while it follows no robot (:mod:`shadow.pool.member`).
 """
 
 from __future__ import annotations
@@ -111,6 +117,41 @@ def client_id_for(robot_id: str, prefix: str = "shadow") -> str:
     return cid
 
 
+def build_client(settings: MqttSettings, client_id: str, *, persistent: bool, manual_ack: bool) -> mqtt.Client:
+    """A paho client for ``settings``: protocol, credentials, TLS and reconnect delays (not yet connected).
+
+    ``persistent``: MQTT 3.1.1 ``clean_session=False`` (for MQTT 5 the session is asked for at connect
+    time, ``clean_start=False`` with a session expiry).
+    """
+    s = settings
+    if s.protocol == "5":
+        client = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, protocol=mqtt.MQTTv5, manual_ack=manual_ack
+        )
+    else:
+        client = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2,
+            client_id=client_id,
+            protocol=mqtt.MQTTv311,
+            clean_session=not persistent,
+            manual_ack=manual_ack,
+        )
+    if s.username is not None:
+        client.username_pw_set(s.username, s.password)
+    if s.tls_ca_file is not None:
+        client.tls_set(
+            ca_certs=s.tls_ca_file,
+            certfile=s.tls_cert_file,
+            keyfile=s.tls_key_file,
+            cert_reqs=ssl.CERT_REQUIRED,
+            tls_version=ssl.PROTOCOL_TLS_CLIENT,
+        )
+    client.reconnect_delay_set(
+        min_delay=max(1, round(s.reconnect_min_delay_s)), max_delay=round(s.reconnect_max_delay_s)
+    )
+    return client
+
+
 @dataclass(frozen=True, slots=True)
 class ReceivedMessage:
     """One MQTT message as it came off the wire, before decoding."""
@@ -134,6 +175,7 @@ class SubscriptionCounters:
     inbox_full_waits: int = 0  # times the network thread waited for room in the inbox
     connects: int = 0
     disconnects: int = 0
+    acks_unsent: int = 0  # acknowledgements not sent: connection lost or session stopped (delivered again)
     last_connect_rc: str = ""
 
 
@@ -165,45 +207,21 @@ class RobotSubscription:
         self.inbox: queue.Queue[ReceivedMessage] = queue.Queue(maxsize=inbox_size)
         self.counters = SubscriptionCounters()
         self.connected = threading.Event()
+        self.subscribed = threading.Event()  # the broker granted the subscription of the current connection
         self._pending_acks: deque[int] = deque()  # mids in arrival order, not yet acknowledged
         self._lock = threading.Lock()
         self._connection = 0  # incremented on every successful connect
+        self._unsent_logged = -1  # the connection whose unsent acknowledgements were logged
+        self._down_since = time.monotonic()  # not connected since then (None while connected)
         self._stopping = False
         self._client = self._build_client()
 
     def _build_client(self) -> mqtt.Client:
-        s = self.settings
-        if s.protocol == "5":
-            client = mqtt.Client(
-                mqtt.CallbackAPIVersion.VERSION2,
-                client_id=self.client_id,
-                protocol=mqtt.MQTTv5,
-                manual_ack=True,
-            )
-        else:
-            client = mqtt.Client(
-                mqtt.CallbackAPIVersion.VERSION2,
-                client_id=self.client_id,
-                protocol=mqtt.MQTTv311,
-                clean_session=False,
-                manual_ack=True,
-            )
-        if s.username is not None:
-            client.username_pw_set(s.username, s.password)
-        if s.tls_ca_file is not None:
-            client.tls_set(
-                ca_certs=s.tls_ca_file,
-                certfile=s.tls_cert_file,
-                keyfile=s.tls_key_file,
-                cert_reqs=ssl.CERT_REQUIRED,
-                tls_version=ssl.PROTOCOL_TLS_CLIENT,
-            )
-        client.reconnect_delay_set(
-            min_delay=max(1, round(s.reconnect_min_delay_s)), max_delay=round(s.reconnect_max_delay_s)
-        )
+        client = build_client(self.settings, self.client_id, persistent=True, manual_ack=True)
         client.on_connect = self._on_connect
         client.on_disconnect = self._on_disconnect
         client.on_message = self._on_message
+        client.on_subscribe = self._on_subscribe
         return client
 
     # --- paho callbacks (network thread): thin, no maths, no database -------------------------
@@ -223,10 +241,21 @@ class RobotSubscription:
             return
         log.info("robot %s: connected to %s, session present=%s", self.robot_id, self.settings.describe(),
                  getattr(flags, "session_present", None))  # fmt: skip
+        self._down_since = None
         self.connected.set()
+
+    def _on_subscribe(self, client: mqtt.Client, userdata: Any, mid: int, reasons: Any, properties: Any) -> None:
+        refused = [r for r in reasons if getattr(r, "is_failure", False)]
+        if refused:
+            log.error("robot %s: the broker refused the subscription to %s: %s", self.robot_id, self.topic, refused[0])
+            return
+        self.subscribed.set()
 
     def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any, properties: Any) -> None:
         self.connected.clear()
+        self.subscribed.clear()
+        if self._down_since is None:
+            self._down_since = time.monotonic()
         self.counters.disconnects += 1
         if self._stopping:
             return
@@ -271,18 +300,37 @@ class RobotSubscription:
         if rc not in (None, mqtt.MQTT_ERR_SUCCESS):
             raise BrokerConnectionError(f"robot {self.robot_id}: cannot connect to {s.describe()}: {rc}")
         self._client.loop_start()
-        if wait_s is not None and not self.connected.wait(wait_s):
+        if wait_s is None:
+            return
+        deadline = time.monotonic() + wait_s
+        if not self.connected.wait(wait_s):
             self.stop()
             raise BrokerConnectionError(
                 f"robot {self.robot_id}: no connection to {s.describe()} within {wait_s} s "
                 f"(last answer: {self.counters.last_connect_rc or 'none'})"
             )
+        # a new session receives nothing published before the broker has the subscription
+        if not self.subscribed.wait(max(0.0, deadline - time.monotonic())):
+            self.stop()
+            raise BrokerConnectionError(
+                f"robot {self.robot_id}: connected to {s.describe()}, but the subscription to {self.topic} was not "
+                f"granted within {wait_s} s (broker ACL?)"
+            )
+
+    def unreachable_for_s(self) -> float:
+        """How long the session has been without a connection [s] (0 while connected; counted from creation
+        before the first connection)."""
+        since = self._down_since
+        return 0.0 if since is None else time.monotonic() - since
 
     def acknowledge(self, message: ReceivedMessage) -> None:
         """Send the PUBACK for a handled message. Must be called in arrival order."""
         if message.qos == 0:
             return
         with self._lock:
+            if self._stopping:
+                self.counters.acks_unsent += 1  # stopped (handed over): the next owner gets it again
+                return
             if message.connection != self._connection or not self._pending_acks:
                 return  # the connection it came on is gone; the broker will send it again
             if self._pending_acks[0] != message.mid:
@@ -293,15 +341,88 @@ class RobotSubscription:
                     f"expected {self._pending_acks[0]})"
                 )
             self._pending_acks.popleft()
-        rc = self._client.ack(message.mid, message.qos)
+            rc = self._client.ack(message.mid, message.qos)  # queued, not blocking; under the lock so stop() waits
         if rc != mqtt.MQTT_ERR_SUCCESS:
-            log.warning("robot %s: PUBACK for mid %d not sent: %s", self.robot_id, message.mid, mqtt.error_string(rc))
+            self.counters.acks_unsent += 1
+            if self._unsent_logged != message.connection:  # once per connection, not once per message
+                self._unsent_logged = message.connection
+                log.warning(
+                    "robot %s: acknowledgements not sent (%s); the broker delivers those messages again "
+                    "and the stored sequence numbers drop them",
+                    self.robot_id,
+                    mqtt.error_string(rc),
+                )
             return
         self.counters.acknowledged += 1
 
     def stop(self) -> None:
         """Disconnect cleanly (the broker keeps the session and any unacknowledged messages)."""
-        self._stopping = True
+        with self._lock:  # an acknowledgement under way goes out before the DISCONNECT
+            self._stopping = True
+        self._client.disconnect()
+        self._client.loop_stop()
+        self.connected.clear()
+
+
+class BrokerProbe:
+    """One plain connection to the broker (clean session, no subscription): can this process reach it?
+
+    A pool worker asks it before claiming robots and to notice that it is cut off from the broker while
+    its database connection still works (:mod:`shadow.pool.member`). The connection carries only
+    keepalive pings, so ``keepalive_s`` bounds how long a silent network cut goes unnoticed (paho gives a
+    connection up when a ping is not answered within one keepalive, so at most about 2 x ``keepalive_s``);
+    a broker that closes or refuses the connection is noticed at once.
+    """
+
+    def __init__(
+        self, settings: MqttSettings, client_id: str, *, keepalive_s: int | None = None, max_retry_s: float = 5.0
+    ) -> None:
+        if keepalive_s is not None and keepalive_s < 5:
+            raise ConfigurationError(f"keepalive_s: must be >= 5 s, got {keepalive_s}")
+        if not max_retry_s >= 1:
+            raise ConfigurationError(f"max_retry_s: must be >= 1 s, got {max_retry_s}")
+        self.settings = settings
+        self.client_id = client_id
+        self.keepalive_s = settings.keepalive_s if keepalive_s is None else keepalive_s
+        self.connected = threading.Event()
+        self.counters = SubscriptionCounters()
+        self._down_since = time.monotonic()
+        self._client = build_client(settings, client_id, persistent=False, manual_ack=False)
+        # reconnect soon after the broker is back, however long it was away (one small CONNECT per try)
+        self._client.reconnect_delay_set(min_delay=1, max_delay=max(1, round(max_retry_s)))
+        self._client.on_connect = self._on_connect
+        self._client.on_disconnect = self._on_disconnect
+
+    def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any, properties: Any) -> None:
+        self.counters.last_connect_rc = str(reason)
+        if reason.is_failure:
+            log.warning("broker probe %s: broker refused connection: %s", self.client_id, reason)
+            return
+        self.counters.connects += 1
+        self._down_since = None
+        self.connected.set()
+
+    def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any, properties: Any) -> None:
+        self.connected.clear()
+        if self._down_since is None:
+            self._down_since = time.monotonic()
+        self.counters.disconnects += 1
+
+    def start(self, *, wait_s: float = 0.0) -> bool:
+        """Connect in the background; waits up to ``wait_s`` for the first connection, returns whether it came."""
+        s = self.settings
+        rc = self._client.connect_async(s.host, s.port, keepalive=self.keepalive_s)
+        if rc not in (None, mqtt.MQTT_ERR_SUCCESS):
+            raise BrokerConnectionError(f"broker probe: cannot connect to {s.describe()}: {rc}")
+        self._client.loop_start()
+        return self.connected.wait(wait_s) if wait_s > 0 else self.connected.is_set()
+
+    def unreachable_for_s(self) -> float:
+        """How long the broker has been out of reach [s] (0 while connected; counted from creation before)."""
+        since = self._down_since
+        return 0.0 if since is None else time.monotonic() - since
+
+    def stop(self) -> None:
         self._client.disconnect()
         self._client.loop_stop()
         self.connected.clear()

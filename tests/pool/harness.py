@@ -115,18 +115,24 @@ class PoolPlant:
         self.prefix = f"shadow-{self.cell}"
         self.mqtt = MqttSettings(host=self.broker_host, port=self.broker_port, client_id_prefix=self.prefix)
         self.layout = TopicLayout()
-        self.config_path = self.workdir / "pool.toml"
+        self.config_path = self.config_for(self.broker_port)
+        self.store = SqlStore(self.database_url)  # migrates, so the trigger can be installed before workers
+
+    def config_for(self, broker_port: int) -> Path:
+        """The pool's configuration file with the broker at ``broker_port`` (a proxy in front of it, for one
+        worker); everything else, the robots' session ids included, is the same for every worker."""
+        path = self.workdir / ("pool.toml" if broker_port == self.broker_port else f"pool-{broker_port}.toml")
         robots = "".join(
             f'[[robots]]\nsite = "{a.site}"\ncell = "{a.cell}"\nrobot = "{a.robot}"\n'
             f'description = "{ROOT / EXAMPLE_DELTA}"\nsample_rate_hz = {self.sample_rate_hz}\n\n'
             for a in self.addresses
         )
-        self.config_path.write_text(
-            f'[mqtt]\nhost = "{self.broker_host}"\nport = {self.broker_port}\nclient_id_prefix = "{self.prefix}"\n\n'
+        path.write_text(
+            f'[mqtt]\nhost = "{self.broker_host}"\nport = {broker_port}\nclient_id_prefix = "{self.prefix}"\n\n'
             f'[database]\nurl = "{self.database_url}"\nraw_retention_s = 3600\n\n'
             f"[pool]\nlease_s = {self.lease_s}\nheartbeat_s = {self.heartbeat_s}\n\n{robots}"
         )
-        self.store = SqlStore(self.database_url)  # migrates, so the trigger can be installed before workers
+        return path
 
     # --- set-up -------------------------------------------------------------------------------
     def install_write_log(self) -> None:
@@ -153,7 +159,9 @@ class PoolPlant:
             client.loop_stop()
 
     # --- workers ------------------------------------------------------------------------------
-    def start_worker(self, name: str) -> Worker:
+    def start_worker(self, name: str, *, broker_port: int | None = None) -> Worker:
+        """``shadow serve --worker name``; ``broker_port``: reach the broker there (a proxy) instead."""
+        config = self.config_path if broker_port is None else self.config_for(broker_port)
         log_path = self.workdir / f"{name}.log"
         log = log_path.open("ab")
         process = subprocess.Popen(
@@ -164,7 +172,7 @@ class PoolPlant:
                 "-v",
                 "serve",
                 "--config",
-                str(self.config_path),
+                str(config),
                 "--worker",
                 name,
                 "--no-api",
@@ -286,6 +294,20 @@ class PoolPlant:
         with self.store.engine.connect() as conn:
             rows = conn.execute(sa.select(t.c.robot_id, sa.func.count()).group_by(t.c.robot_id))
             return {str(r[0]): int(r[1]) for r in rows}
+
+    def first_writes_after(self, t_s: float) -> dict[str, float]:
+        """robot -> database time of its first checkpoint write after ``t_s`` by a lease granted after ``t_s``
+        (the first result of a new owner; needs the write log)."""
+        h = schema.lease_history
+        with self.store.engine.connect() as conn:
+            grants = conn.execute(sa.select(h.c.robot_id, h.c.fencing_token).where(h.c.acquired_at_s > t_s)).all()
+            newer = {(str(r.robot_id), int(r.fencing_token)) for r in grants}
+            rows = conn.execute(sa.text("select * from checkpoint_writes where at_s > :t order by at_s"), {"t": t_s})
+            first: dict[str, float] = {}
+            for w in rows:
+                if (w.robot_id, w.fencing_token) in newer:
+                    first.setdefault(str(w.robot_id), float(w.at_s))
+            return first
 
     def first_stored_at(self) -> dict[str, float]:
         """robot -> database time of its first checkpoint write (needs the write log)."""

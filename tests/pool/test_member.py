@@ -1,22 +1,29 @@
 """Pool members in one process, round by round, on a real PostgreSQL: sharing, rebalancing, losing leases.
 
-Rounds are called by hand (``tick``) so every step of the protocol is seen; the pipelines are stand-ins
-that only carry the fence (the MQTT and monitor side are covered in test_pool_processes.py).
+Rounds are called by hand (``tick``) so every step of the protocol is seen; the pipelines, sessions and
+broker probes are stand-ins that carry the fence and say how long they have been without a connection
+(the MQTT and monitor side are covered in test_pool_processes.py).
 """
 
 from __future__ import annotations
 
 import math
+import re
 import time
 from collections.abc import Iterator
 from typing import Any
 
 import pytest
+from fastapi.testclient import TestClient
+from prometheus_client.parser import text_string_to_metric_families
 
+from shadow.api.app import create_app
+from shadow.cli.serve import status_snapshot
+from shadow.ingest.mqtt import MqttSettings
 from shadow.pool.leases import LeaseTable
 from shadow.pool.member import PoolMember
 from shadow.service import RobotStatus, Service
-from shadow.store.repository import Fence, SqlStore, StoreUnavailableError
+from shadow.store.repository import Fence, LeaseLostError, SqlStore, StepResults, StoreUnavailableError
 from tests.pool.common import fresh_database, store_with_robots, wait_until_db_time
 from tests.servers import PostgresServer
 
@@ -26,16 +33,61 @@ ROBOTS = [f"kestrel/share/r{i:02d}" for i in range(12)]
 
 
 class StandInPipeline:
-    """What Service and PoolMember use of a pipeline: id, status, fence, lease_lost, step."""
+    """What Service and PoolMember use of a pipeline: id, status, fence, lease_lost, step.
 
-    def __init__(self, robot_id: str, fence: Fence) -> None:
+    With a ``store``, a step writes an empty step under the fence and, refused, counts it and marks the
+    pipeline ``lease_lost`` as :class:`shadow.service.RobotPipeline` does.
+    """
+
+    def __init__(self, robot_id: str, fence: Fence, store: SqlStore | None = None) -> None:
         self.robot_id = robot_id
         self.fence = fence
+        self.store = store
         self.status = RobotStatus(robot_id)
         self.lease_lost = False
+        self.detached = False
 
     def step(self) -> int:
+        if self.store is not None:
+            try:
+                self.store.write_step(StepResults(self.robot_id), fence=self.fence)
+            except LeaseLostError:
+                self.status.fenced_steps += 1
+                self.lease_lost = True
         return 0
+
+
+class StandInSession:
+    """What PoolMember and Service use of a robot's session: id, settings, stop, time without connection."""
+
+    settings = MqttSettings(reconnect_min_delay_s=0.5, reconnect_max_delay_s=1.0)
+
+    def __init__(self, robot_id: str) -> None:
+        self.robot_id = robot_id
+        self.away_s = 0.0
+        self.stopped = False
+
+    def unreachable_for_s(self) -> float:
+        return self.away_s
+
+    def stop(self) -> None:
+        self.stopped = True
+
+
+class StandInProbe:
+    """A broker probe whose time out of reach the test sets."""
+
+    def __init__(self) -> None:
+        self.away_s = 0.0
+
+    def start(self, *, wait_s: float = 0.0) -> bool:
+        return self.away_s == 0.0
+
+    def stop(self) -> None:
+        pass
+
+    def unreachable_for_s(self) -> float:
+        return self.away_s
 
 
 @pytest.fixture
@@ -45,12 +97,30 @@ def store(postgres_server: PostgresServer) -> Iterator[SqlStore]:
     s.close()
 
 
-def member(store: SqlStore, name: str, *, lease_s: float = 30.0, table: LeaseTable | None = None) -> PoolMember:
-    def follow(robot_id: str, fence: Fence) -> tuple[Any, None]:
-        return StandInPipeline(robot_id, fence), None
+def member(
+    store: SqlStore,
+    name: str,
+    *,
+    lease_s: float = 30.0,
+    table: LeaseTable | None = None,
+    probe: StandInProbe | None = None,
+    sessions: dict[str, StandInSession] | None = None,
+    writes: bool = False,
+) -> PoolMember:
+    """A joined member; with ``sessions`` every robot it follows gets a stand-in session, kept there by id;
+    with ``writes`` its pipelines write (fenced) at every step."""
+
+    def follow(robot_id: str, fence: Fence) -> tuple[Any, Any]:
+        pipeline = StandInPipeline(robot_id, fence, store if writes else None)
+        if sessions is None:
+            return pipeline, None
+        sessions[robot_id] = StandInSession(robot_id)
+        return pipeline, sessions[robot_id]
 
     leases = table or LeaseTable(store.engine, name, lease_s=lease_s)
-    m = PoolMember(leases, Service(store, []), ROBOTS, follow, heartbeat_s=leases.lease_s / 3)
+    m = PoolMember(
+        leases, Service(store, []), ROBOTS, follow, heartbeat_s=leases.lease_s / 3, broker=probe, broker_grace_s=1.0
+    )
     m.join(host="test", pid=1)
     return m
 
@@ -147,3 +217,112 @@ def test_a_member_cut_from_the_database_detaches_after_a_lease_length(store: Sql
     a.tick()
     assert len(a.held) == 12  # its old leases expired; claimed again under new tokens
     assert set(a.held.values()) == {2}
+
+
+def test_a_member_cut_off_from_the_broker_frees_its_robots_and_takes_its_share_back(store: SqlStore) -> None:
+    probe = StandInProbe()
+    a, b = member(store, "a", probe=probe), member(store, "b", probe=StandInProbe())
+    for m in (a, b, a, b):
+        m.tick()
+    check_exclusive([a, b])
+    probe.away_s = 0.5  # within the grace (1 s): a blip costs no hand-over
+    a.tick()
+    assert len(a.held) == 6 and a.in_pool and a.counters.broker_cutoffs == 0
+    probe.away_s = 1.5  # past the grace: every robot freed at once, the worker row removed
+    a.tick()
+    assert not a.held and a.service.pipelines == [] and not a.in_pool
+    assert a.counters.broker_cutoffs == 1 and a.counters.released == 6 and a.counters.lost == 0
+    assert a.leases.live_workers() == ["b"]
+    assert all(row["owner"] in (None, "b") for row in a.leases.leases())
+    b.tick()  # alone in the pool now: claims the six a freed
+    assert len(b.held) == 12
+    a.tick()  # still out of reach: stays out, claims nothing
+    assert not a.held and not a.in_pool and a.leases.live_workers() == ["b"]
+    probe.away_s = 0.0  # the broker is back: a joins again and claims its share once b makes room
+    for m in (a, b, a):
+        m.tick()
+    assert a.in_pool and a.leases.live_workers() == ["a", "b"]
+    check_exclusive([a, b])
+    assert [len(a.held), len(b.held)] == [6, 6]
+    assert a.status()["broker_cutoffs"] == 1 and a.status()["robots_held"] == 6
+
+
+def test_a_member_claims_nothing_while_its_probe_is_not_connected(store: SqlStore) -> None:
+    probe = StandInProbe()
+    probe.away_s = 0.2
+    a = member(store, "a", probe=probe)
+    a.tick()
+    assert not a.held and a.in_pool  # still renewing its row: it may only be a blip
+    probe.away_s = 0.0
+    a.tick()
+    assert len(a.held) == 12
+
+
+def test_a_robot_whose_session_cannot_connect_goes_to_another_worker(store: SqlStore) -> None:
+    sessions: dict[str, StandInSession] = {}
+    a = member(store, "a", probe=StandInProbe(), sessions=sessions)
+    a.tick()
+    assert len(a.held) == 12
+    stuck = ROBOTS[3]
+    # the grace (1 s) plus the session's longest reconnect delay (1 s) without a connection, broker reachable
+    sessions[stuck].away_s = 2.1
+    a.tick()
+    assert stuck not in a.held and sessions[stuck].stopped and a.counters.unreadable == 1
+    a.tick()  # below its share (12) but does not take the robot straight back
+    assert stuck not in a.held and len(a.held) == 11
+    b = member(store, "b", probe=StandInProbe(), sessions={})
+    b.tick()  # share 6, one robot free: the one a could not read
+    assert set(b.held) == {stuck}
+
+
+def test_the_status_route_and_the_metrics_carry_the_pool_counters(store: SqlStore) -> None:
+    a = member(store, "a", probe=StandInProbe(), writes=True)
+    a.tick()  # claims all twelve
+    a.tick()  # renews them
+    a.service.run_once()  # every pipeline writes under its fence
+    victim = sorted(a.held)[0]
+    a.leases.release(victim, a.held[victim])  # the lease moves on behind the pipeline's back
+    a.service.run_once()  # that write is refused
+    assert a.service.status.fenced_writes_refused == 1
+    a.tick()  # gives the refused robot up and claims it again under a new token
+    app = create_app(store, status_provider=lambda: status_snapshot(a.service, a))
+    client = TestClient(app)
+    pool = client.get("/api/v1/status").json()["pool"]
+    expected = {
+        "worker_id": "a",
+        "in_pool": True,
+        "broker_reachable": True,
+        "live_workers": 1,
+        "robots_held": 12,
+        "lease_renewals": 12 + 11,  # second round, third round without the lease that moved on
+        "robots_claimed": 13,
+        "robots_released": 0,  # the refused robot's lease was no longer a's to release
+        "leases_lost": 1,
+        "robots_unreadable": 0,
+        "broker_cutoffs": 0,
+        "database_failures": 0,
+        "fenced_writes_refused": 1,
+    }
+    assert pool == expected
+    families = {f.name: f for f in text_string_to_metric_families(client.get("/metrics").text)}
+    pool_families = {name: f for name, f in families.items() if name.startswith("shadow_pool_")}
+    for name, family in pool_families.items():
+        # Prometheus naming (prometheus.io/docs/practices/naming): snake case; counters are exposed as *_total
+        assert re.fullmatch(r"shadow_pool_[a-z]+(_[a-z]+)*", name), name
+        assert [s.labels for s in family.samples] == [{"worker_id": "a"}], name
+        if family.type == "counter":
+            assert [s.name for s in family.samples] == [f"{name}_total"], name
+    values = {name: f.samples[0].value for name, f in pool_families.items()}
+    assert (
+        values["shadow_pool_fenced_writes_refused"] == 1.0
+        and families["shadow_pool_fenced_writes_refused"].type == "counter"
+    )
+    assert values["shadow_pool_robots_held"] == 12.0 and families["shadow_pool_robots_held"].type == "gauge"
+    assert values["shadow_pool_lease_renewals"] == 23.0 and values["shadow_pool_leases_lost"] == 1.0
+    assert values["shadow_pool_broker_reachable"] == 1.0
+
+
+def test_a_single_service_has_no_pool_status(store: SqlStore) -> None:
+    client = TestClient(create_app(store, status_provider=lambda: status_snapshot(Service(store, []))))
+    assert client.get("/api/v1/status").json()["pool"] is None
+    assert "shadow_pool_" not in client.get("/metrics").text

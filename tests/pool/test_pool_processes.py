@@ -8,6 +8,8 @@ Twelve simulated 1 kHz robots (50-sample batches, so 20 messages per robot per s
 * a trigger's log of every checkpoint write with its fencing token and the database's clock: no write
   under a token after a newer token of that robot was granted, and no robot's checkpoint going back;
 * the raw batches: every published sequence number stored exactly once; one collision event per robot.
+
+One worker reaches the broker through a proxy that the broker cut-off test closes (tests/pool/proxy.py).
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ import time
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -25,6 +28,7 @@ import pytest
 from shadow.ingest.wire import SampleBatch
 from tests.pool.common import fresh_database
 from tests.pool.harness import PoolPlant, Publishing, ownership_gaps, regressions, stale_writes, wait_until
+from tests.pool.proxy import CuttableProxy
 from tests.servers import Broker, PostgresServer
 from tests.synthetic import EPOCH_S, delta_stream
 
@@ -96,6 +100,16 @@ def check_results(plant: PoolPlant, n_batches: int) -> None:
     assert not regressions(writes)
 
 
+def grants_open_at(history: dict[str, list[dict[str, Any]]], robots: set[str], t_s: float) -> dict[str, dict[str, Any]]:
+    """robot -> its grant that was running at ``t_s``."""
+    return {
+        r: next(
+            g for g in history[r] if g["acquired_at_s"] <= t_s and (g["ended_at_s"] is None or g["ended_at_s"] > t_s)
+        )
+        for r in robots
+    }
+
+
 def assert_settles(plant: PoolPlant, owners: set[str], timeout_s: float = 30.0) -> None:
     assert wait_until(lambda: plant.settled(owners), timeout_s), (owners, plant.shares())
 
@@ -132,6 +146,9 @@ def test_three_workers_share_twelve_robots_a_fourth_joins_and_one_dies(plant: Po
     assert handovers and max(handovers) <= plant.lease_s, handovers  # w4 joining left no robot unowned for long
     log.info("failover after SIGKILL [s]: %s; handover gaps [s]: max %.2f of %d",
              sorted(round(v, 2) for v in retaken.values()), max(handovers), len(handovers))  # fmt: skip
+    for name in ("w1", "w3", "w4"):  # never cut off: every acknowledgement of theirs went out, also at hand-overs
+        text = plant.workers[name].log()
+        assert "acknowledgements not sent" not in text and "PUBACK" not in text, name
 
 
 @pytest.mark.parametrize("plant", [8], indirect=True)
@@ -156,3 +173,39 @@ def test_a_worker_stopped_past_its_lease_writes_nothing_after_losing_it(plant: P
     assert counters is not None and counters["lost"] >= len(stalled), counters
     fenced = plant.workers["w1"].log().count("write refused")
     log.info("w1 lost %d lease(s); %d write(s) of w1 refused by the fence after SIGCONT", counters["lost"], fenced)
+
+
+@pytest.mark.parametrize("plant", [8], indirect=True)
+def test_a_worker_cut_off_from_the_broker_frees_its_robots_and_takes_them_again(plant: PoolPlant) -> None:
+    batches = stream()
+    proxy = CuttableProxy(plant.broker_port).start()
+    try:
+        plant.start_worker("w1", broker_port=proxy.port)  # w1's only path to the broker
+        plant.start_worker("w2")
+        assert_settles(plant, {"w1", "w2"}, 60.0)
+        with plant.publishing(batches, PERIOD_S) as publishing:
+            assert wait_until(lambda: publishing.sent * PERIOD_S >= 2.0, 30)
+            cut_off = {rid for rid, owner in plant.live_owners().items() if owner == "w1"}
+            cut_at = plant.now_s()
+            proxy.cut()  # w1 still reaches PostgreSQL, and would go on renewing its leases
+            assert wait_until(lambda: plant.shares() == {"w2": 8}, 30), plant.shares()
+            open_at_cut = grants_open_at(plant.history(), cut_off, cut_at)
+            assert all(g["owner"] == "w1" and g["end_cause"] == "released" for g in open_at_cut.values())  # not expired
+            assert wait_until(lambda: set(plant.first_writes_after(cut_at)) >= cut_off, 30)
+            first_results = plant.first_writes_after(cut_at)
+            proxy.restore()
+            assert_settles(plant, {"w1", "w2"}, 60.0)  # w1 joins again and gets its share back
+            assert publishing.running()
+            n_batches = publish_until_stored(plant, publishing, more_s=2.0)
+        plant.stop_all()
+    finally:
+        proxy.close()
+    check_results(plant, n_batches)
+    release_s = sorted(g["ended_at_s"] - cut_at for g in open_at_cut.values())
+    result_s = sorted(first_results[r] - cut_at for r in cut_off)
+    # the grace is one lease; then a round of w1 (release) and a round of w2 (claim), with a margin
+    assert max(result_s) <= 2 * plant.lease_s + 4 * plant.heartbeat_s + 2.0, result_s
+    counters = plant.workers["w1"].final_counters()
+    assert counters is not None and counters["broker_cutoffs"] == 1 and counters["lost"] == 0, counters
+    log.info("broker cut-off, lease %.1f s: released %.2f-%.2f s after the cut, first result of w2 %.2f-%.2f s",
+             plant.lease_s, min(release_s), max(release_s), min(result_s), max(result_s))  # fmt: skip
