@@ -91,7 +91,7 @@ from shadow.estimation.kalman import reset_parameter
 from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
 from shadow.ingest.wire import PositionUnit, SampleBatch, encode_binary
 from shadow.robots.description import RobotDescription, build_model
-from shadow.robots.drives import effort_from_current
+from shadow.robots.drives import declared_effort_timing, effort_from_current
 from shadow.robots.friction import friction_effort
 from shadow.robots.parameters import MeasuredQuantity
 from shadow.store.repository import StepResults
@@ -199,9 +199,10 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         payload_walk = [1e-4] + [1e-5] * 3 + [1e-6] * 6
         payload_res = [0.05] + [0.01] * 3 + [0.005] * 6
     rated = float(np.mean([d.rated_effort for d in drives]))
+    reported, command_period = declared_effort_timing(drives, 1.0 / sample_rate_hz)
     tracker = TrackerSettings(
         half_window=10,
-        poly_order=3 if delta else 4,
+        poly_order=5,  # exact to degree 5 also off the window's centre, where the efforts' instants lie
         max_gap_s=0.05,
         output_period_s=1.0,
         smooth_velocity=smooth,
@@ -213,6 +214,8 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         current_loop_bandwidth_hz=np.array([d.current_loop_bandwidth_hz for d in drives]),
         noise_time_constant_s=60.0,
         n_temperatures=n,
+        reported_effort=reported,
+        command_period_s=command_period,
     )
     return MonitorSettings(tracker=tracker, sample_rate_hz=sample_rate_hz, wear_reference_speed=1.0 if delta else 0.05)
 

@@ -25,6 +25,15 @@ Compliant plant, two masses per actuator joined by the coupling effort ``tau_c =
 principle of virtual work, ``tau_ext = J^T w``.
 Current loop, first-order lag of time constant T_c with u held from t_0:
     ``tau_a(t) = u + (tau_a(t_0) - u) exp(-(t - t_0) / T_c)``  (exact, evaluated at each integrator stage).
+The integrator sees the transient ``(tau_a(t_k) - u) phi(s)``, ``phi(s) = exp(-s h / T_c)`` over a step, only at its
+stage times, and a step longer than T_c misweighs it: RK4 integrates the velocity with Simpson's rule,
+``(phi(0) + 4 phi(1/2) + phi(1)) / 6`` = 0.2225 for h = 5 T_c against the exact ``(1 - e^-x) / x`` = 0.1987
+(x = h / T_c), which lags the plant's effective effort by a further 0.024 h. So every step ends with the difference
+between the exact integrals of the transient and the method's quadrature of it (:func:`transient_weights`):
+    ``dv = h A (tau_a(t_k) - u) w_v``,  ``dq = h^2 A (tau_a(t_k) - u) w_q``,
+``w_v = (1 - e^-x) / x - quad_v``, ``w_q = 1 / x - (1 - e^-x) / x^2 - quad_q`` (the exact first and second integrals
+of phi over the unit step), A the effort-to-acceleration map at the step's start (M^-1, or 1 / J_r on the motor side
+with a coupling). It makes the transient's contribution exact for any step, up to the change of A within the step.
 
 M and h for a per-system payload (the model's methods take one theta_p for all rows) come from the linearity
 in theta_p: ``h = tau_known + Y_p theta_p`` of the rigid regressor at qdd = 0, and M by the cheaper exact route
@@ -216,6 +225,37 @@ class MassUpdate(enum.Enum):
     EVERY_STEP = "every_step"
 
 
+def transient_weights(method: Method, time_constant_s: Array, step_s: float) -> tuple[Array, Array]:
+    """(w_v, w_q) (n,): exact minus quadrature integrals of ``phi(s) = exp(-s h / T_c)`` over the unit step.
+
+    The forcing weights of each method for a second-order system (stage fractions 0, 1/2, 1):
+    RK4 velocity ``(phi_0 + 4 phi_1/2 + phi_1) / 6``, position ``(phi_0 + 2 phi_1/2) / 6`` (Simpson's rule and its
+    moment, from expanding the classical stages); Heun ``(phi_0 + phi_1) / 2`` and ``phi_0 / 2``; semi-implicit Euler
+    ``phi_0`` and ``phi_0``. Exact: ``int_0^1 phi = (1 - e^-x) / x``, ``int_0^1 (1 - c) phi = 1/x - (1 - e^-x) / x^2``,
+    x = h / T_c. An ideal loop (T_c = 0) has no transient: (0, 0).
+    """
+    tc = np.asarray(time_constant_s, dtype=float)
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        x = np.where(tc > 0.0, step_s / np.where(tc > 0.0, tc, 1.0), np.inf)  # x = h / T_c
+        phi_half, phi_1 = np.exp(-0.5 * x), np.exp(-x)
+        small = x < 1e-3  # series near 0, where the closed forms cancel: 1 - x/2 + x^2/6 and 1/2 - x/6 + x^2/24
+        exact_v = np.where(small, 1.0 - x / 2.0 + x**2 / 6.0, -np.expm1(-x) / np.where(small, 1.0, x))
+        exact_q = np.where(
+            small,
+            0.5 - x / 6.0 + x**2 / 24.0,
+            1.0 / np.where(small, 1.0, x) + np.expm1(-x) / np.where(small, 1.0, x) ** 2,
+        )
+    phi_0 = 1.0
+    if method is Method.RK4:
+        quad_v, quad_q = (phi_0 + 4.0 * phi_half + phi_1) / 6.0, (phi_0 + 2.0 * phi_half) / 6.0
+    elif method is Method.HEUN:
+        quad_v, quad_q = 0.5 * (phi_0 + phi_1), 0.5 * phi_0
+    else:
+        quad_v, quad_q = np.full_like(x, phi_0), np.full_like(x, phi_0)
+    ideal = ~(tc > 0.0)
+    return np.where(ideal, 0.0, exact_v - quad_v), np.where(ideal, 0.0, exact_q - quad_q)
+
+
 class Plant:
     """Rigid mechanism plus drive effects, integrated with a fixed internal step.
 
@@ -251,6 +291,7 @@ class Plant:
         self._tc = np.asarray(config.current_time_constant_s, dtype=float)
         self._jr = np.asarray(config.rotor_inertia, dtype=float)
         self._coupling = config.coupling
+        self._transient = transient_weights(method, self._tc, self.internal_step_s)  # (w_v, w_q) per actuator
 
     # ------------------------------------------------------------------------------------------ set-up
     def initial_state(
@@ -349,6 +390,29 @@ class Plant:
             decay = np.where(self._tc > 0.0, np.exp(-elapsed_s / np.where(self._tc > 0.0, self._tc, 1.0)), 0.0)
         return command + (effort0 - command) * decay
 
+    def _correct_transient(
+        self, pos: Array, vel: Array, excess: Array, mass_matrix: Array | None
+    ) -> tuple[Array, Array]:
+        """Add ``dv = h A e w_v`` and ``dq = h^2 A e w_q`` for the transient ``e = tau_a(t_k) - u`` of one step.
+
+        ``pos``, ``vel`` are the state after the step; A is M^-1 of ``mass_matrix`` (B, n, n), the mass matrix at
+        the step's start (rigid plant), or 1 / J_r on the motor side (compliant plant, ``mass_matrix`` unused).
+        """
+        w_v, w_q = self._transient
+        h = self.internal_step_s
+        n = self.n
+        if self.compliant:  # the effort acts on the motor side only: J_r qdd_m = tau_a - ...
+            pos = pos.copy()
+            vel = vel.copy()
+            vel[:, n:] += h * excess * w_v / self._jr
+            pos[:, n:] += h**2 * excess * w_q / self._jr
+            return pos, vel
+        if mass_matrix is None:
+            raise ConfigurationError("mass_matrix: needed to correct the current-loop transient of a rigid plant")
+        rhs = np.stack([h * excess * w_v, h**2 * excess * w_q], axis=2)  # (B, n, 2)
+        d = np.linalg.solve(mass_matrix, rhs)  # M^-1 [h e w_v, h^2 e w_q]
+        return pos + d[:, :, 1], vel + d[:, :, 0]
+
     # ----------------------------------------------------------------------------------------- stepping
     def advance(
         self,
@@ -394,12 +458,26 @@ class Plant:
             m = None if h_m is None else h_m[0] + h_m[1] * (t - h_m[2])  # M_k + (M_k - M_k-1)/h (t - t_k)
             return self.acceleration(pos, vel, tau_a, theta_p, temperature, wrench(t), mass_matrix=m)
 
+        correct = bool(np.any(self._transient[0] != 0.0) or np.any(self._transient[1] != 0.0))
+
+        def corrected(pos_new: Array, vel_new: Array, pos_start: Array, k: int) -> tuple[Array, Array]:
+            """The step's result plus the exact-minus-quadrature part of the current-loop transient."""
+            excess = self.effort_at(effort0, command, k * step) - command  # tau_a(t_k) - u
+            if not correct or not np.any(excess):
+                return pos_new, vel_new
+            m = None
+            if not self.compliant:
+                h_m = held[0]
+                m = mass_terms(self.mechanism, pos_start[:, : self.n], theta_p) if h_m is None else h_m[0]
+            return self._correct_transient(pos_new, vel_new, excess, m)
+
         pos, vel = state.position, state.velocity
         if self.method is Method.SYMPLECTIC:
             for k in range(n_steps):
                 if hold:
                     extrapolate(pos[:, : self.n], t0 + k * step)
-                pos, vel = symplectic_euler_step(accel, t0 + k * step, pos, vel, step)
+                pos_next, vel_next = symplectic_euler_step(accel, t0 + k * step, pos, vel, step)
+                pos, vel = corrected(pos_next, vel_next, pos, k)
         else:
             f = second_order_derivative(accel, d)
             x = np.concatenate([pos, vel], axis=1)
@@ -407,7 +485,9 @@ class Plant:
             for k in range(n_steps):
                 if hold:
                     extrapolate(x[:, : self.n], t0 + k * step)
-                x = stepper(f, t0 + k * step, x, step)
+                x_next = stepper(f, t0 + k * step, x, step)
+                pos_next, vel_next = corrected(x_next[:, :d], x_next[:, d:], x[:, :d], k)
+                x = np.concatenate([pos_next, vel_next], axis=1)
             pos, vel = x[:, :d], x[:, d:]
         elapsed = n_steps * step
         return replace(

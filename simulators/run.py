@@ -3,8 +3,9 @@
 Per output sample k (period h_s, internal step h_s / substeps):
   1. sensors read the plant: encoder position ``quantise(q_m)``; rate by backward difference of the readings,
      ``(q_k - q_{k-1}) / h_s`` (how drives usually derive speed from an encoder, common practice, no source);
-     actual effort plus white Gaussian noise (or the current, effort / (eta k_t G)); drive temperatures;
-  2. the controller computes u_k from the readings and the plan; u_k is held until the next sample;
+     actual effort tau_a(t_k) plus white Gaussian noise (or the current, effort / (eta k_t G)); drive temperatures;
+  2. the controller computes u_k from the readings and the plan; u_k is held until the next sample (an actuator
+     whose sensor reports the command, ``Sensors.reported``, streams u_k plus the noise instead of tau_a(t_k));
   3. the plant advances by ``substeps`` internal steps; then the thermal model by h_s.
 Time stamps carry the controller's jitter: ``stamp_k = t_k + e_k``, e_k ~ N(0, sigma) clipped to
 +-0.4 h_s, while the values belong to the true instant t_k (so the stamps, not the values, are off).
@@ -26,7 +27,7 @@ from shadow.robots.delta import DeltaModel
 from shadow.robots.description import RobotDescription, build_model
 from shadow.robots.drives import current_to_effort_gains, reflected_inertias
 from shadow.robots.mechanism import Mechanism
-from shadow.robots.parameters import MeasuredQuantity
+from shadow.robots.parameters import MeasuredQuantity, ReportedEffort
 from simulators.controller import JointPid
 from simulators.effects import (
     DriveThermal,
@@ -59,6 +60,7 @@ class Sensors:
     effort_noise_std: Array  # (n,) standard deviation of the effort reading [N m | N]
     current_gain: Array | None = None  # (n,) eta k_t G [N m/A | N/A]: report current instead of effort
     jitter_std_s: float = 0.0  # standard deviation of the time-stamp error [s]
+    reported: tuple[ReportedEffort, ...] | None = None  # per actuator: actual effort (default) or the command u_k
 
 
 @dataclass(frozen=True, slots=True)
@@ -99,7 +101,7 @@ class RunRecord:
     stamp_s: Array  # (B, T) reported time stamps (with jitter)
     q: Array  # (B, T, n) encoder readings (quantised)
     qd: Array  # (B, T, n) rates from the readings
-    effort: Array  # (B, T, n) measured effort [N m | N] or current [A] (see ``is_current``)
+    effort: Array  # (B, T, n) measured effort [N m | N] or current [A] (see ``is_current``; actual or command)
     is_current: bool
     temperature_c: Array  # (B, T, n)
     tool: NDArray[np.bool_]  # (B, T)
@@ -193,6 +195,9 @@ def run_closed_loop(
     previous = quantise(qm0 - qdm0 * sample_step_s, sensors.encoder_count)
     z = np.zeros((b, n))
     friction = plant.config.friction
+    if sensors.reported is not None and len(sensors.reported) != n:
+        raise ShapeError(f"sensors.reported: expected {n} values, got {len(sensors.reported)}")
+    streams_command = np.array([r is ReportedEffort.COMMAND for r in (sensors.reported or ())] or [False] * n)
 
     for k in range(n_t):  # time stepping is sequential; every line below is vectorised over the batch
         ql, qdl = plant.load_side(state)
@@ -214,6 +219,7 @@ def run_closed_loop(
             reference.q[:, k], reference.qd[:, k], reference.effort_ff[:, k], reading, rate, z, sample_step_s
         )
         rec["u"][:, k] = u
+        rec["effort"][:, k] = np.where(streams_command, u + noise[:, k], rec["effort"][:, k])  # command: u_k
         state = plant.advance(state, u, reference.theta_p[:, k], n_steps=substeps, pulses=pulses)
         state = plant.heat(state, ambient, sample_step_s)
 
@@ -402,5 +408,6 @@ def demo_loop(
         effort_noise_std=effects.effort_noise_fraction * rated,
         current_gain=gains if current else None,
         jitter_std_s=effects.jitter_std_s,
+        reported=tuple(d.reported for d in drives),
     )
     return plant, controller, sensors

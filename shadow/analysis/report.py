@@ -12,7 +12,8 @@ and the efforts computed with the final estimates theta = (theta_p, theta_f):
     tau_c = ID(q, qd, qdd; theta_p) + tau_f(qd; theta_f)          rigid model plus friction
     (delta: theta_p = m_tool + m_work gripping, per sample; ID is affine in theta_p)
 
-passed through the drives' current-loop lag as the tracker does. Per actuator, with e = tau_m - tau_c over
+with each actuator's motion taken at the instant its reported effort belongs to, as the tracker does
+(:class:`shadow.estimation.conditioning.EffortMotion`). Per actuator, with e = tau_m - tau_c over
 the K samples of the stretch:
 
     RMS error     = sqrt(mean(e^2))                               [N m | N]
@@ -44,7 +45,7 @@ from numpy.typing import NDArray
 from shadow.analysis import Analysis, FinalEstimate, estimate_series
 from shadow.api.schemas import ADVISORY_NOTICE
 from shadow.errors import ConfigurationError, ShadowError
-from shadow.estimation.conditioning import Conditioner, lag_like_measurement
+from shadow.estimation.conditioning import Conditioner, regressor_at_efforts
 from shadow.ingest.wire import decode_binary
 from shadow.monitoring import RobotMonitor
 from shadow.robots.drives import effort_from_current
@@ -157,6 +158,7 @@ def validation_stretch(
         half_window=tracker.half_window,
         poly_order=tracker.poly_order,
         max_gap_s=tracker.max_gap_s,
+        effort_delay_s=monitor.tracker.effort_delay_s,  # each effort against the motion at its own instant
     )
     cb = cond.feed(t[lo:hi], q[lo:hi], {"effort": effort[lo:hi], "gripping": grip[lo:hi, None]})
     if cb.n_samples < 2:
@@ -164,21 +166,15 @@ def validation_stretch(
     by_name = {f.parameter: f.value for f in finals}  # the filter's state; per-transfer masses are not part of it
     x = np.array([by_name[name] for name in monitor.tracker.parameter_names])
     p = monitor.tracker.n_payload
-    model = monitor.model
-    if monitor.delta:  # theta_p = m_tool + m_work g per sample; ID affine in theta_p
+    tau_known, y_p, qd = regressor_at_efforts(monitor.model, cb.effort_motion)  # tau = tau_known + Y_p theta_p
+    if monitor.delta:  # theta_p = m_tool + m_work g per sample
         theta = x[0] + x[1] * cb.channels["gripping"][:, 0]
-        tau0 = model.inverse_dynamics(cb.q, cb.qd, cb.qdd, np.zeros(1))
-        tau1 = model.inverse_dynamics(cb.q, cb.qd, cb.qdd, np.ones(1))
-        tau = tau0 + (tau1 - tau0) * theta[:, None]
+        tau = tau_known + y_p[:, :, 0] * theta[:, None]
     else:
-        tau = model.inverse_dynamics(cb.q, cb.qd, cb.qdd, x[:p])
+        tau = tau_known + np.einsum("kap,p->ka", y_p, x[:p])
     tau = tau + friction_effort(
-        cb.qd, x[p:], smooth_velocity=tracker.smooth_velocity, stribeck_velocity=tracker.stribeck_velocity
+        qd, x[p:], smooth_velocity=tracker.smooth_velocity, stribeck_velocity=tracker.stribeck_velocity
     )  # tau_c = ID + tau_f
-    if tracker.current_loop_bandwidth_hz is not None:  # the measurement lags the command like this
-        tau, _, _ = lag_like_measurement(
-            cb.t, tau, cb.segment_start, np.asarray(tracker.current_loop_bandwidth_hz, dtype=float), None, 0.0
-        )
     measured = cb.channels["effort"]
     rms, nrms, r = validation_measures(measured, tau)
     return Validation(cb.t, measured, tau, rms, nrms, r)

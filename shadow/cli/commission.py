@@ -51,7 +51,7 @@ from shadow.robots.description import (
     build_model,
     load_description,
 )
-from shadow.robots.drives import effort_from_current
+from shadow.robots.drives import declared_effort_timing, effort_from_current
 from shadow.robots.parameters import MeasuredQuantity, RigidPayload
 
 Array = NDArray[np.float64]
@@ -148,7 +148,10 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
         "sample on a fixed clock and stamp with jitter)",
     )
     parser.add_argument(
-        "--no-lag", action="store_true", help="do not pass the model through the drives' current-loop lag"
+        "--ideal-drives",
+        action="store_true",
+        help="take every effort as belonging to the motion at its own instant (ideal current loops, continuous "
+        "commands), not at the instant the description's drives and measurement section give",
     )
     parser.set_defaults(handler=run)
 
@@ -266,15 +269,18 @@ def _unit(name: str, rotary: bool) -> str:
 # ---------------------------------------------------------------------------------------------- command
 
 
-def _settings(args: argparse.Namespace, description: RobotDescription) -> CommissioningSettings:
+def _settings(args: argparse.Namespace, description: RobotDescription, sample_period_s: float) -> CommissioningSettings:
+    """Settings from the options; the efforts' timing from the description on a stream of ``sample_period_s`` [s]."""
     rotary = description.family == "delta"
     if description.friction is not None:
         v_s = description.friction.smooth_velocity
     else:
         v_s = DEFAULT_SMOOTH_VELOCITY_RAD_S if rotary else DEFAULT_SMOOTH_VELOCITY_M_S
-    bandwidth = None
-    if not args.no_lag:
-        bandwidth = np.array([d.current_loop_bandwidth_hz for d in description.parameters.drives], dtype=float)
+    bandwidth = reported = period = None
+    if not args.ideal_drives:
+        drives = description.parameters.drives
+        bandwidth = np.array([d.current_loop_bandwidth_hz for d in drives], dtype=float)
+        reported, period = declared_effort_timing(drives, sample_period_s)
     if args.half_window < 1:
         raise ConfigurationError(f"--half-window: must be >= 1, got {args.half_window}")
     if not 2 <= args.poly_order < 2 * args.half_window + 1:
@@ -287,6 +293,8 @@ def _settings(args: argparse.Namespace, description: RobotDescription) -> Commis
         poly_order=args.poly_order,
         max_gap_s=args.max_gap_s,
         current_loop_bandwidth_hz=bandwidth,
+        reported_effort=reported,
+        command_period_s=period,
         confidence=args.confidence,
         max_condition=args.max_condition,
         velocity_unit="rad/s" if rotary else "m/s",
@@ -311,9 +319,9 @@ def run(args: argparse.Namespace) -> int:
     if args.test_mass_kg is not None and not args.test_mass_kg > 0:
         raise ConfigurationError(f"--test-mass-kg: must be > 0, got {args.test_mass_kg}")
     description = load_description(args.description)
-    settings = _settings(args, description)
     model = build_model(description)
     rec = read_recording(args.recording, description, robot_id=args.robot)
+    settings = _settings(args, description, float(np.median(np.diff(rec.t))))
     run_c = _conditioned(rec, settings, args.fit_clock)
     if args.apply_gains and args.gain_run is None:
         raise ConfigurationError("--apply-gains: needs --gain-run and --test-mass-kg")

@@ -7,14 +7,16 @@ tracker in :mod:`shadow.estimation.tracker`, which uses the same measurement mod
 
 Measurement model (sample k, actuator i; efforts at the joint side)
 -------------------------------------------------------------------
-    z_k = tau_meas_k - G[tau_known]_k = G[H]_k theta + v_k,    v_k,i ~ N(0, sigma_i^2)
+    z_k = tau_meas_k - tau_known(m_k) = H(m_k) theta + v_k,    v_k,i ~ N(0, sigma_i^2)
 
-with G[.] the optional current-loop lag (as in the tracker) and
+with m_k,i the motion at the instant actuator i's reported effort belongs to, ``t_k - d_i`` (as in the tracker:
+:func:`shadow.robots.drives.reported_effort_delay_s`, from the settings' current-loop bandwidths, ``reported_effort``
+and ``command_period_s``; the centred window's polynomial is evaluated there) and
 - delta (the model's payload is one mass): H = [Y_p, Y_p g_k, Y_f], theta = [m_tool, m_work, theta_f], g_k = 1 while
   the tool grips;
 - hexapod (p = 10): H = [Y_p, Y_f], theta = [pi (10 standard inertial parameters), theta_f]; if the run cannot
   excite the nine first and second moments, only the mass is estimated ("mass only"), the other nine are held at
-  their nominal values and moved to the known side: z = tau_meas - G[tau_known + Y_p[:, :, 1:] pi_nom[1:]].
+  their nominal values and moved to the known side: z = tau_meas - tau_known - Y_p[:, :, 1:] pi_nom[1:].
 
 Weighted least squares (Montgomery, Peck & Vining, "Introduction to Linear Regression Analysis", 5th ed., 2012,
 section 5.5, weighted least squares; section 3.4, confidence intervals on the coefficients; from memory)
@@ -85,10 +87,12 @@ from numpy.typing import NDArray
 
 from shadow.errors import ConfigurationError, ShadowError, ShapeError, expect_finite, expect_shape
 from shadow.estimation.baseline import Baseline
-from shadow.estimation.conditioning import Conditioner, lag_like_measurement
+from shadow.estimation.conditioning import Conditioner, EffortMotion, regressor_at_efforts
 from shadow.estimation.tracker import HEXAPOD_PAYLOAD_NAMES
+from shadow.robots.drives import reported_effort_delay_s
 from shadow.robots.friction import friction_regressor, parameter_names, parameters_per_actuator
 from shadow.robots.mechanism import Mechanism
+from shadow.robots.parameters import ReportedEffort
 
 Array = NDArray[np.float64]
 BoolArray = NDArray[np.bool_]
@@ -112,7 +116,10 @@ class CommissioningSettings:
         quintic keeps the acceleration's bias on a 1 kHz pick-and-place motion far below what a long run resolves
         (a cubic on 21 samples biased the payload mass by several of its standard deviations in our tests)
     stribeck_velocity : v_st [rad/s | m/s], or None for no Stribeck term
-    current_loop_bandwidth_hz : (n,) per actuator, or None for no lag compensation
+    current_loop_bandwidth_hz : (n,) per actuator [Hz], or None for ideal loops
+    reported_effort : n :class:`ReportedEffort` values, what each recorded effort is; None: all actual
+    command_period_s : (n,) hold period of each effort command [s] (the controller's cycle); None: continuous
+        (the last three set each effort's instant, :meth:`effort_delay_s`)
     confidence : level of the intervals, in (0, 1)
     max_condition : largest accepted ratio s_max / s_j of the column-scaled regressor [-]
     involvement : share |v_ij| above which parameter i is named for an unseen direction j [-]
@@ -140,6 +147,8 @@ class CommissioningSettings:
     min_samples_per_parameter: int = 10
     empty_column_rtol: float = 1e-6
     velocity_unit: str = "rad/s"
+    reported_effort: tuple[ReportedEffort, ...] | None = None
+    command_period_s: Array | None = None
 
     def __post_init__(self) -> None:
         if not self.smooth_velocity > 0:
@@ -154,6 +163,13 @@ class CommissioningSettings:
             raise ConfigurationError(f"weight_iterations: must be >= 0, got {self.weight_iterations}")
         if self.reversal_speed is not None and not self.reversal_speed > 0:
             raise ConfigurationError(f"reversal_speed: must be > 0, got {self.reversal_speed}")
+
+    def effort_delay_s(self, n_actuators: int) -> Array:
+        """d (n,) [s]: the effort recorded at t_k belongs to the motion at t_k - d."""
+        reported = self.reported_effort or (ReportedEffort.ACTUAL,) * n_actuators
+        if len(reported) != n_actuators:
+            raise ConfigurationError(f"reported_effort: expected {n_actuators} values, got {len(reported)}")
+        return reported_effort_delay_s(reported, self.current_loop_bandwidth_hz, self.command_period_s)
 
     @property
     def moving_speed(self) -> float:
@@ -179,10 +195,18 @@ class ConditionedRun:
     segment_start: BoolArray  # (K,)
     n_raw: int  # samples before conditioning
     n_segments: int  # stretches between gaps
+    effort_motion: EffortMotion | None = None  # the motion at the efforts' instants; None: the samples themselves
 
     @property
     def n_samples(self) -> int:
         return int(self.t.shape[0])
+
+    def motion_at_efforts(self) -> EffortMotion:
+        """:attr:`effort_motion`, or the samples themselves (one group of delay 0) when the run has none."""
+        if self.effort_motion is not None:
+            return self.effort_motion
+        n = self.q.shape[1]
+        return EffortMotion(np.zeros(1), np.zeros(n, dtype=np.intp), self.q[None], self.qd[None], self.qdd[None])
 
 
 @dataclass(frozen=True, slots=True)
@@ -278,6 +302,8 @@ def condition_run(
 ) -> ConditionedRun:
     """Centred Savitzky-Golay velocities and accelerations of a whole run; effort and tool state aligned.
 
+    The motion is also evaluated at the instants the efforts belong to (``settings.effort_delay_s``).
+
     Parameters
     ----------
     t : (N,) [s], strictly increasing (a longer step than ``max_gap_s`` splits the run)
@@ -298,6 +324,7 @@ def condition_run(
         half_window=settings.half_window,
         poly_order=settings.poly_order,
         max_gap_s=settings.max_gap_s,
+        effort_delay_s=settings.effort_delay_s(q.shape[1]),
     )
     cb = cond.feed(t, q, {"effort": effort, "gripping": grip[:, None]})  # whole run at once: centred windows
     return ConditionedRun(
@@ -310,6 +337,7 @@ def condition_run(
         segment_start=cb.segment_start,
         n_raw=int(t.shape[0]),
         n_segments=1 + len(cb.restarts),
+        effort_motion=cb.effort_motion,
     )
 
 
@@ -358,17 +386,6 @@ def fit_sample_clock(t: Array, *, max_step_ratio: float = 1.5) -> Array:
     slope = np.where(skk > 0, sky / np.where(skk > 0, skk, 1.0), 0.0)  # b = S_ky / S_kk
     fitted = y_mean[seg] + slope[seg] * dk  # t_k = a + b k, about the stretch means
     return t_ref + fitted
-
-
-def _lagged(run: ConditionedRun, columns: Array, settings: CommissioningSettings) -> Array:
-    """G[columns] for (K, n, c) columns, actuator i's rows through actuator i's current loop."""
-    if settings.current_loop_bandwidth_hz is None:
-        return columns
-    f = np.asarray(settings.current_loop_bandwidth_hz, dtype=float)
-    k, n, c = columns.shape
-    expect_shape("current_loop_bandwidth_hz", f, (n,))
-    out, _, _ = lag_like_measurement(run.t, columns.reshape(k, n * c), run.segment_start, np.repeat(f, c), None, 0.0)
-    return out.reshape(k, n, c)
 
 
 # ------------------------------------------------------------------------------------------ least squares
@@ -444,7 +461,7 @@ def _regressor(
 ) -> tuple[Array, Array, list[str], int]:
     """(z (K, n), H (K, n, p), names, n_payload) of the measurement model in the module docstring."""
     n = int(mechanism.n_actuators)
-    tau_known, Y_p = mechanism.rigid_regressor(run.q, run.qd, run.qdd)
+    tau_known, Y_p, qd = regressor_at_efforts(mechanism, run.motion_at_efforts())
     if payload_mode == PAYLOAD_SPLIT:
         Y_pay = np.concatenate([Y_p, Y_p * run.gripping[:, None, None]], axis=2)  # [Y_p, Y_p g_k]
         pay_names = list(DELTA_PAYLOAD_NAMES)
@@ -457,14 +474,11 @@ def _regressor(
         tau_known = tau_known + np.einsum("Nij,j->Ni", Y_p[:, :, 1:], nominal_payload[1:])
         Y_pay = Y_p[:, :, :1]
         pay_names = _payload_names(Y_p.shape[2])[:1]
-    Y_f = friction_regressor(
-        run.qd, smooth_velocity=settings.smooth_velocity, stribeck_velocity=settings.stribeck_velocity
-    )
+    Y_f = friction_regressor(qd, smooth_velocity=settings.smooth_velocity, stribeck_velocity=settings.stribeck_velocity)
     H = np.concatenate([Y_pay, Y_f], axis=2)  # (K, n, p)
-    lagged = _lagged(run, np.concatenate([tau_known[:, :, None], H], axis=2), settings)
-    z = run.effort - lagged[:, :, 0]  # z = tau_meas - G[tau_known]
+    z = run.effort - tau_known  # z = tau_meas - tau_known
     names = pay_names + parameter_names(n, stribeck=settings.stribeck_velocity is not None)
-    return z, lagged[:, :, 1:], names, len(pay_names)
+    return z, H, names, len(pay_names)
 
 
 def _payload_names(p: int) -> list[str]:
@@ -867,14 +881,14 @@ def calibrate_gains(
     blocks = []
     gripped = bool(np.any(run_plain.gripping > 0) or np.any(run_loaded.gripping > 0))  # else no work-piece column
     for run, loaded in ((run_plain, 0.0), (run_loaded, 1.0)):
-        tau_known, Y_p = mechanism.rigid_regressor(run.q, run.qd, run.qdd)
+        tau_known, Y_p, qd = regressor_at_efforts(mechanism, run.motion_at_efforts())
         y_test = np.einsum("Nij,j->Ni", Y_p, pi_t) * loaded  # Y_p pi_t b_k
         if p_model == 1 and gripped:
             Y_pay = np.concatenate([Y_p, Y_p * run.gripping[:, None, None]], axis=2)
         else:
             Y_pay = Y_p
         Y_f = friction_regressor(
-            run.qd, smooth_velocity=settings.smooth_velocity, stribeck_velocity=settings.stribeck_velocity
+            qd, smooth_velocity=settings.smooth_velocity, stribeck_velocity=settings.stribeck_velocity
         )
         idx = np.arange(n)
         k = settings.friction_per_actuator
@@ -883,7 +897,7 @@ def calibrate_gains(
             cols = [(y_test + tau_known)[:, :, None], Y_pay, Y_f_own]
         else:
             cols = [y_test[:, :, None], tau_known[:, :, None], Y_pay, Y_f_own]
-        X = _lagged(run, np.concatenate(cols, axis=2), settings)  # (K, n, c) per-actuator design
+        X = np.concatenate(cols, axis=2)  # (K, n, c) per-actuator design
         blocks.append((X, run.effort))
     X = np.concatenate([b[0] for b in blocks])
     y = np.concatenate([b[1] for b in blocks])

@@ -29,9 +29,12 @@ d       : polynomial order, 2 <= d < W (acceleration needs d >= 2)
 s       : (W,) window times relative to the centre, scaled by the window's half span h: s = (t_j - t_c) / h
 V       : (W, d + 1) Vandermonde matrix V_jk = s_j^k; coefficients c = V^+ y; y^(r)(t_c) = r! c_r / h^r
 
-Predicted effort: the measured effort has passed through the drive's current loop, so the model's prediction must
-pass through the same first-order lag before the two are compared (:func:`lag_like_measurement`, which calls
-:func:`shadow.robots.drives.current_loop_lag` segment by segment).
+Efforts and motion at their own instants: the reported effort at t_k belongs to the motion at ``t_k - d`` (d per
+actuator, :func:`shadow.robots.drives.reported_effort_delay_s`: about half a control period for an actual effort
+under a held command, minus half a period and the current loop's time constant for a streamed command). The
+polynomial of each window is therefore also evaluated at ``t_c - d`` (value, first and second derivative;
+:func:`local_motion`), which needs no extra delay as long as ``|d|`` stays inside the window, and
+:func:`regressor_at_efforts` evaluates the rigid-body regressor there, one call per distinct delay.
 """
 
 from __future__ import annotations
@@ -45,7 +48,7 @@ from numpy.lib.stride_tricks import sliding_window_view
 from numpy.typing import NDArray
 
 from shadow.errors import ConfigurationError, ShapeError, expect_finite, expect_shape
-from shadow.robots.drives import current_loop_lag
+from shadow.robots.mechanism import Mechanism
 
 Array = NDArray[np.float64]
 
@@ -116,6 +119,48 @@ def local_derivatives(t_win: Array, y_win: Array, poly_order: int) -> tuple[Arra
     return yd, ydd
 
 
+def local_motion(t_win: Array, y_win: Array, poly_order: int, offset_s: Array) -> tuple[Array, Array, Array]:
+    """Value, velocity and acceleration of each window's polynomial at ``t_c + offset_s`` (fitted in the actual times).
+
+    Parameters
+    ----------
+    t_win : (N, W) sample times of each window [s], W odd, strictly increasing along axis 1
+    y_win : (N, W, n) values in each window
+    poly_order : d, 2 <= d < W
+    offset_s : (N,) evaluation time relative to the centre sample t_win[:, W // 2] [s]
+
+    Returns
+    -------
+    y, yd, ydd : (N, n) at ``t_c + offset_s``: ``y = sum_k c_k s^k``, ``yd = sum_k k c_k s^(k-1) / h``,
+    ``ydd = sum_k k (k - 1) c_k s^(k-2) / h^2`` with ``s = offset_s / h`` and c = V^+ y (the same fit as
+    :func:`local_derivatives`, which is the case offset 0 for the derivatives)
+    """
+    n_windows, width = t_win.shape
+    expect_shape("y_win", y_win, (n_windows, width, None))
+    expect_shape("offset_s", offset_s, (n_windows,))
+    centre = width // 2
+    half_span = 0.5 * (t_win[:, -1] - t_win[:, 0])  # h (N,) [s]
+    s = (t_win - t_win[:, centre : centre + 1]) / half_span[:, None]  # s_j = (t_j - t_c) / h
+    G = _pseudo_inverse_rows(s, poly_order)  # V^+ (d+1 rows of (N, W))
+    x = offset_s / half_span  # evaluation point in window units
+    w0 = np.zeros_like(s)
+    w1 = np.zeros_like(s)
+    w2 = np.zeros_like(s)
+    for k in range(poly_order + 1):  # loop over the polynomial's coefficients, not samples
+        w0 += G[k] * (x**k)[:, None]  # y = sum_k c_k x^k
+        if k >= 1:
+            w1 += G[k] * (k * x ** (k - 1))[:, None]  # y' h = sum_k k c_k x^(k-1)
+        if k >= 2:
+            w2 += G[k] * (k * (k - 1) * x ** (k - 2))[:, None]  # y'' h^2 = sum_k k (k-1) c_k x^(k-2)
+    w1 /= half_span[:, None]
+    w2 /= half_span[:, None] ** 2
+    return (
+        np.einsum("kw,kwn->kn", w0, y_win),
+        np.einsum("kw,kwn->kn", w1, y_win),
+        np.einsum("kw,kwn->kn", w2, y_win),
+    )
+
+
 def _pseudo_inverse_rows(s: Array, poly_order: int) -> list[Array]:
     """Rows of V^+ = R^-1 Q^T for the Vandermonde matrices V_jk = s_j^k of every window, s (N, W).
 
@@ -152,11 +197,73 @@ class Restart:
 
 
 @dataclass(frozen=True, slots=True)
+class EffortMotion:
+    """The motion at the instants the reported efforts belong to, ``t_k - d_i``, one evaluation per distinct delay.
+
+    Actuator i's effort belongs to evaluation ``group[i]``; a group of delay 0 holds the centre samples themselves
+    (the raw q with the window's qd and qdd), any other group the window polynomial at ``t_k - d``.
+    """
+
+    delay_s: Array  # (G,) d of each group [s]
+    group: NDArray[np.intp]  # (n,) group of each actuator's effort
+    q: Array  # (G, K, n)
+    qd: Array  # (G, K, n)
+    qdd: Array  # (G, K, n)
+
+    @property
+    def n_groups(self) -> int:
+        return int(self.delay_s.shape[0])
+
+    def own_velocity(self) -> Array:
+        """(K, n): each actuator's velocity at its own effort's instant (for its friction)."""
+        idx = np.arange(self.group.shape[0])
+        return self.qd[self.group, :, idx].T.copy()
+
+    def take(self, rows: slice | NDArray[np.intp]) -> EffortMotion:
+        """The same groups for a subset of the samples."""
+        return EffortMotion(self.delay_s, self.group, self.q[:, rows], self.qd[:, rows], self.qdd[:, rows])
+
+
+def regressor_at_efforts(mechanism: Mechanism, motion: EffortMotion) -> tuple[Array, Array, Array]:
+    """``(tau_known (K, n), Y_p (K, n, p), qd (K, n))`` with each actuator's rows taken at its effort's instant.
+
+    One rigid-regressor call per group (one in the usual case of drives that share their timing); actuator i's
+    rows come from the call of its group, and ``qd[:, i]`` is its velocity there (for the friction regressor).
+    """
+    tau_known = Y_p = None
+    for g in range(motion.n_groups):  # loop over distinct delays, not samples
+        tk, yp = mechanism.rigid_regressor(motion.q[g], motion.qd[g], motion.qdd[g])
+        if tau_known is None or Y_p is None:
+            tau_known, Y_p = tk, yp
+            continue
+        rows = motion.group == g
+        tau_known[:, rows] = tk[:, rows]
+        Y_p[:, rows] = yp[:, rows]
+    if tau_known is None or Y_p is None:
+        raise ConfigurationError("effort motion: no groups")
+    return tau_known, Y_p, motion.own_velocity()
+
+
+def effort_groups(effort_delay_s: Array | None, n_actuators: int) -> tuple[Array, NDArray[np.intp]]:
+    """(delays (G,) [s], group (n,)) of per-actuator effort delays (None: all 0), the delays in first-seen order."""
+    d = np.zeros(n_actuators) if effort_delay_s is None else np.asarray(effort_delay_s, dtype=float)
+    expect_shape("effort_delay_s", d, (n_actuators,))
+    expect_finite("effort_delay_s", d)
+    delays: list[float] = []
+    group = np.empty(n_actuators, dtype=np.intp)
+    for i, value in enumerate(d.tolist()):  # n actuators, a handful
+        if value not in delays:
+            delays.append(value)
+        group[i] = delays.index(value)
+    return np.array(delays, dtype=float), group
+
+
+@dataclass(frozen=True, slots=True)
 class ConditionedBatch:
     """Time-aligned conditioner output: every field is taken at the same (centre) samples.
 
     ``segment_start[k]`` is True where output k is the first of a segment (the first output ever, or the first after
-    a restart); recursive filters downstream (the current-loop lag) reset there. ``restart_before[r]`` is the index
+    a restart); recursive filters downstream reset there. ``restart_before[r]`` is the index
     of the first output after restart r (``K`` when that output is not ready yet: it will come in a later batch).
     """
 
@@ -168,6 +275,7 @@ class ConditionedBatch:
     segment_start: NDArray[np.bool_]  # (K,)
     restarts: tuple[Restart, ...]
     restart_before: NDArray[np.intp]  # (len(restarts),)
+    effort_motion: EffortMotion  # the motion at the efforts' own instants (the centre samples for zero delays)
 
     @property
     def n_samples(self) -> int:
@@ -188,6 +296,8 @@ class Conditioner:
     half_window : m; the outputs are delayed by m samples
     poly_order : d, 2 <= d < 2 m + 1
     max_gap_s : a longer step restarts the conditioning [s]
+    effort_delay_s : (n,) delay d of each reported effort behind the motion [s] (negative: it leads), or None for 0;
+        the batch's :class:`EffortMotion` is taken at ``t_k - d``. ``|d|`` must stay within each window's half span.
     """
 
     def __init__(
@@ -198,6 +308,7 @@ class Conditioner:
         half_window: int,
         poly_order: int,
         max_gap_s: float,
+        effort_delay_s: Array | None = None,
     ) -> None:
         _check_window(half_window, poly_order)
         if not max_gap_s > 0:
@@ -207,6 +318,7 @@ class Conditioner:
         self.half_window = int(half_window)
         self.poly_order = int(poly_order)
         self.max_gap_s = float(max_gap_s)
+        self.effort_delays_s, self.effort_group = effort_groups(effort_delay_s, self.n_actuators)
         self._t = np.zeros(0)
         self._q = np.zeros((0, self.n_actuators))
         self._ch = {k: np.zeros((0, w)) for k, w in self.channel_widths.items()}
@@ -267,10 +379,25 @@ class Conditioner:
         else:
             start = np.zeros(0, dtype=np.intp)
         centre = start + m
+        n_out = start.size
+        groups = self.effort_delays_s.shape[0]
+        motion = np.zeros((3, groups, n_out, self.n_actuators))  # (q, qd, qdd) of each group
         if start.size:
             t_win = sliding_window_view(t_all, width)[start]  # (K, W)
             q_win = np.swapaxes(sliding_window_view(q_all, width, axis=0)[start], 1, 2)  # (K, W, n)
             qd, qdd = local_derivatives(t_win, q_win, self.poly_order)
+            half_span = 0.5 * (t_win[:, -1] - t_win[:, 0])
+            for g, d in enumerate(self.effort_delays_s.tolist()):  # loop over distinct delays, not samples
+                if d == 0.0:
+                    motion[:, g] = q_all[centre], qd, qdd
+                    continue
+                if np.any(abs(d) > half_span):
+                    k = int(np.argmax(abs(d) > half_span))
+                    raise ConfigurationError(
+                        f"effort_delay_s: {d:.3g} s reaches outside the conditioning window at "
+                        f"t = {t_all[centre[k]]:.6f} s (half span {half_span[k]:.3g} s); take a longer half_window"
+                    )
+                motion[:, g] = local_motion(t_win, q_win, self.poly_order, np.full(n_out, -d))  # at t_c - d
         else:
             qd = np.zeros((0, self.n_actuators))
             qdd = np.zeros((0, self.n_actuators))
@@ -283,6 +410,7 @@ class Conditioner:
             segment_start=seg_first[start].copy(),
             restarts=restarts,
             restart_before=np.searchsorted(start, np.flatnonzero(brk) + 1),  # first window starting after the break
+            effort_motion=EffortMotion(self.effort_delays_s.copy(), self.effort_group.copy(), *motion),
         )
 
         # keep the last (at most 2 m) samples of the last segment for the windows still to come
@@ -321,50 +449,3 @@ class Conditioner:
             ch[name] = a.copy()
         self._t, self._q, self._ch = t.copy(), q.copy(), ch
         self._tail_starts_segment = bool(state["tail_starts_segment"])
-
-
-def lag_like_measurement(
-    t: Array,
-    u: Array,
-    segment_start: NDArray[np.bool_],
-    bandwidth_hz: Array,
-    y_prev: Array | None,
-    t_prev_s: float,
-) -> tuple[Array, Array, float]:
-    """Pass predicted efforts (or regressor columns) u through the current-loop lag, as the measurement was.
-
-    ``y_k = y_{k-1} + (1 - exp(-2 pi f dt_k)) (u_k - y_{k-1})`` per column (exact for a zero-order-held input), via
-    :func:`shadow.robots.drives.current_loop_lag`. The lag starts settled on its input (``y = u``) at every
-    conditioning restart (``segment_start``) and when there is no history (``y_prev`` None); otherwise it carries
-    on from ``y_prev`` at ``t_prev_s``.
-
-    Parameters
-    ----------
-    t : (N,) sample times [s], increasing inside a segment
-    u : (N, c) values to lag, any unit
-    segment_start : (N,) True where a new conditioning segment begins
-    bandwidth_hz : (c,) bandwidth of the loop each column belongs to [Hz]
-    y_prev, t_prev_s : lag output (c,) at the previous sample and its time [s], or None (no history)
-
-    Returns
-    -------
-    (u_lag (N, c), y_last (c,), t_last_s): the lagged values and the state to pass on with the next batch.
-    """
-    n_samples = t.shape[0]
-    expect_shape("u", u, (n_samples, None))
-    if segment_start.shape != (n_samples,):
-        raise ShapeError(f"segment_start: expected shape ({n_samples},), got {segment_start.shape}")
-    out = np.empty_like(u)
-    cuts = sorted({0, *np.flatnonzero(segment_start).tolist(), n_samples})
-    y_last = y_prev
-    t_last = t_prev_s
-    for a, b in zip(cuts[:-1], cuts[1:], strict=True):  # loop over conditioning segments, not samples
-        fresh = bool(segment_start[a]) or y_last is None
-        dt0 = 0.0 if fresh else t[a] - t_last  # step ending at the segment's first sample
-        dt = np.concatenate([[dt0], np.diff(t[a:b])])
-        out[a:b] = current_loop_lag(u[a:b], dt, bandwidth_hz, None if fresh else y_last)
-        y_last = out[b - 1].copy()
-        t_last = float(t[b - 1])
-    if y_last is None:
-        y_last = np.zeros(0)
-    return out, y_last, t_last

@@ -1,14 +1,15 @@
 """Live payload and friction estimator of one robot: conditioning -> rigid-body regressor -> batched Kalman filter.
 
-Measurement model (per conditioned sample k, actuator efforts at the joint side):
+Measurement model (per conditioned sample k, actuator i, efforts at the joint side):
 
-    tau_meas_k = G[tau_known(q, qd, qdd)]_k + G[H]_k x + v_k,   z_k = tau_meas_k - G[tau_known]_k = G[H]_k x + v_k
+    tau_meas_k,i = tau_known,i(m_k,i) + H_i(m_k,i) x + v_k,i,    z_k = tau_meas_k - tau_known = H x + v_k
 
-with G[.] the current-loop lag (a first-order lag per actuator, :func:`shadow.robots.drives.current_loop_lag`).
-The measured effort has passed through the current loop, so the model's prediction goes through the same lag;
-the lag is linear and x is constant over a batch, so lagging tau_known and every column of H is the same as
-lagging the predicted effort (G[H x] = G[H] x). The lag restarts (settled on its input) at every conditioning
-restart.
+with m_k,i the motion (q, qd, qdd) at the instant the reported effort belongs to, ``t_k - d_i``: the mechanism
+moves under the actual effort, so an actual effort belongs to the motion at its own instant up to the sampling of
+a held command (about half a control period), and a streamed command leads the motion by half a period plus the
+current loop's time constant (:func:`shadow.robots.drives.reported_effort_delay_s`; d from
+``current_loop_bandwidth_hz``, ``reported_effort`` and ``command_period_s`` of the settings). The conditioner
+evaluates each window's polynomial there (:class:`shadow.estimation.conditioning.EffortMotion`).
 
 State x = [theta_p, theta_f]:
 - delta (the model's payload is one mass): theta_p = [m_tool, m_work]; the model's mass column Y_p multiplies
@@ -43,18 +44,22 @@ from shadow.estimation.conditioning import (
     REASON_GAP,
     REASON_NOT_INCREASING,
     Conditioner,
+    EffortMotion,
     Restart,
-    lag_like_measurement,
+    regressor_at_efforts,
 )
 from shadow.estimation.kalman import BatchKalmanFilter, FilterModel, FilterState
+from shadow.robots.drives import reported_effort_delay_s
 from shadow.robots.friction import friction_regressor, parameter_names, parameters_per_actuator
 from shadow.robots.mechanism import Mechanism
+from shadow.robots.parameters import ReportedEffort
 
 Array = NDArray[np.float64]
 
 HEXAPOD_PAYLOAD_NAMES = ("m", "m_cx", "m_cy", "m_cz", "I_xx", "I_xy", "I_xz", "I_yy", "I_yz", "I_zz")
 _REASONS = (REASON_GAP, REASON_NOT_INCREASING)
 _PENDING = ("t", "q", "qd", "qdd", "effort", "gripping", "temperature", "segment_start")
+_PENDING_MOTION = ("effort_q", "effort_qd", "effort_qdd")  # (K, G n): the motion at the efforts' instants
 
 
 @dataclass(frozen=True, slots=True)
@@ -70,7 +75,10 @@ class TrackerSettings:
     payload_resolution : (p,) a batch that pins theta_p,i to this std counts as exciting it [unit]
     friction_resolution : (k,) the same per friction class [unit]
     stribeck_velocity : v_st [rad/s | m/s], or None for no Stribeck term
-    current_loop_bandwidth_hz : (n,) current-loop bandwidth per actuator, or None for no lag
+    current_loop_bandwidth_hz : (n,) current-loop bandwidth per actuator [Hz], or None for ideal loops
+    reported_effort : n :class:`ReportedEffort` values, what each streamed effort is; None: all actual
+    command_period_s : (n,) hold period of each effort command [s] (the controller's cycle); None: continuous
+        (the last three set the effort's instant, :attr:`effort_delay_s`)
     noise_time_constant_s : tau_R of the adaptive measurement noise [s], or None to keep R fixed
     n_temperatures : width of the optional temperature channel (0: none)
     """
@@ -89,6 +97,15 @@ class TrackerSettings:
     current_loop_bandwidth_hz: Array | None = None
     noise_time_constant_s: float | None = None
     n_temperatures: int = 0
+    reported_effort: tuple[ReportedEffort, ...] | None = None
+    command_period_s: Array | None = None
+
+    def effort_delay_s(self, n_actuators: int) -> Array:
+        """d (n,) [s]: the reported effort at t_k belongs to the motion at t_k - d (see the module docstring)."""
+        reported = self.reported_effort or (ReportedEffort.ACTUAL,) * n_actuators
+        if len(reported) != n_actuators:
+            raise ConfigurationError(f"reported_effort: expected {n_actuators} values, got {len(reported)}")
+        return reported_effort_delay_s(reported, self.current_loop_bandwidth_hz, self.command_period_s)
 
 
 @dataclass(frozen=True, slots=True)
@@ -113,8 +130,8 @@ class TrackerOutput:
     qd: Array  # (K, n) their Savitzky-Golay velocities
     effort: Array  # (K, n) measured efforts aligned with q, qd [N m | N]
     gripping: Array  # (K,) tool state aligned with q (1.0 gripping, 0.0 not)
-    tau_known: Array  # (K, n) the model's effort without payload, before the current-loop lag [N m | N]
-    Y_payload: Array  # (K, n, p_model) the model's payload regressor, before the lag
+    tau_known: Array  # (K, n) the model's effort without payload, at the efforts' instants [N m | N]
+    Y_payload: Array  # (K, n, p_model) the model's payload regressor, at the efforts' instants
 
     @property
     def n_samples(self) -> int:
@@ -175,12 +192,11 @@ class PayloadFrictionTracker:
             raise ConfigurationError(f"payload_prior_std: must be > 0, got {v['payload_prior_std']}")
         if not settings.output_period_s > 0:
             raise ConfigurationError(f"output_period_s: must be > 0, got {settings.output_period_s}")
-        self._bandwidth = None
         if settings.current_loop_bandwidth_hz is not None:
             f = np.asarray(settings.current_loop_bandwidth_hz, dtype=float)
             if f.shape != (n,) or np.any(~(f > 0)) or not np.all(np.isfinite(f)):
                 raise ConfigurationError(f"current_loop_bandwidth_hz: expected {n} finite values > 0, got {f}")
-            self._bandwidth = np.concatenate([f, np.repeat(f, p + k * n)])  # tau_known columns, then H's rows
+        self.effort_delay_s = settings.effort_delay_s(n)  # (n,) [s]
 
         friction_lower = np.tile(np.array([0.0, 0.0] + [-np.inf] * (k - 2)), n)  # Coulomb, viscous >= 0
         self.parameter_names = tuple(
@@ -207,20 +223,21 @@ class PayloadFrictionTracker:
             half_window=settings.half_window,
             poly_order=settings.poly_order,
             max_gap_s=settings.max_gap_s,
+            effort_delay_s=self.effort_delay_s,
         )
+        self._motion_width = self.conditioner.effort_delays_s.shape[0] * n  # G n columns per pending motion array
         self._reset_runtime()
 
     def _reset_runtime(self) -> None:
         n = self.n_actuators
         widths = {"t": None, "q": n, "qd": n, "qdd": n, "effort": n, "gripping": 1}
         widths["temperature"] = self._channels["temperature"]
+        widths.update({name: self._motion_width for name in _PENDING_MOTION})
         self._pending: dict[str, Array] = {
             name: np.zeros(0) if w is None else np.zeros((0, w)) for name, w in widths.items()
         }
         self._pending["segment_start"] = np.zeros(0, dtype=bool)
         self._pending_restarts: list[tuple[int, Restart]] = []  # (pending sample index it precedes, restart)
-        self._lag_y = np.zeros(0)  # last lag output (empty: no lag history)
-        self._lag_t = np.nan  # its time [s]
         self._last_update_t = np.nan  # time of the last sample of the previous batch [s]
 
     # ------------------------------------------------------------------ streaming
@@ -272,8 +289,11 @@ class PayloadFrictionTracker:
                 "temperature": cb.channels["temperature"],
                 "segment_start": cb.segment_start,
             }
+            em = cb.effort_motion
+            for name, a in zip(_PENDING_MOTION, (em.q, em.qd, em.qdd), strict=True):
+                new[name] = np.swapaxes(a, 0, 1).reshape(cb.n_samples, self._motion_width)  # (G, K, n) -> (K, G n)
             n_before = self._pending["t"].shape[0]
-            self._pending = {k: np.concatenate([self._pending[k], new[k]]) for k in _PENDING}
+            self._pending = {k: np.concatenate([self._pending[k], new[k]]) for k in (*_PENDING, *_PENDING_MOTION)}
             self._pending_restarts += [
                 (n_before + int(j), r) for j, r in zip(cb.restart_before, cb.restarts, strict=True)
             ]
@@ -304,38 +324,25 @@ class PayloadFrictionTracker:
         self._pending = {k: v[n_done:].copy() for k, v in self._pending.items()}
         self._pending_restarts = [(j - n_done, r) for j, r in self._pending_restarts]
 
-    def _lag(self, t: Array, u: Array, segment_start: NDArray[np.bool_]) -> Array:
-        """Current-loop lag G[u] of each column of u (K, c), restarted at segment starts."""
-        if self._bandwidth is None:
-            return u
-        y_prev = self._lag_y if self._lag_y.shape[0] else None
-        out, self._lag_y, self._lag_t = lag_like_measurement(t, u, segment_start, self._bandwidth, y_prev, self._lag_t)
-        return out
-
     def _fold(self, a: int, b: int) -> TrackerOutput:
-        """Regressor, lag and Kalman update for pending samples a..b-1 (one output period)."""
+        """Regressor at the efforts' instants and Kalman update for pending samples a..b-1 (one output period)."""
         s = {k: v[a:b] for k, v in self._pending.items()}
-        n = self.n_actuators
         t = s["t"]
-        tau_known, Y_p = self.mechanism.rigid_regressor(s["q"], s["qd"], s["qdd"])
+        tau_known, Y_p, qd_effort = regressor_at_efforts(self.mechanism, self._effort_motion(s))
         grip = s["gripping"][:, 0]
         if self._split_work_piece:
             Y_pay = np.concatenate([Y_p, Y_p * grip[:, None, None]], axis=2)  # [Y_p, Y_p g_k]
         else:
             Y_pay = Y_p
         Y_f = friction_regressor(
-            s["qd"], smooth_velocity=self.settings.smooth_velocity, stribeck_velocity=self.settings.stribeck_velocity
+            qd_effort, smooth_velocity=self.settings.smooth_velocity, stribeck_velocity=self.settings.stribeck_velocity
         )
         H = np.concatenate([Y_pay, Y_f], axis=2)  # (K, n, p + k n)
-        n_x = H.shape[2]
-        u = np.concatenate([tau_known, H.reshape(t.shape[0], n * n_x)], axis=1)
-        u_lag = self._lag(t, u, s["segment_start"].astype(bool))  # G[tau_known], G[H]
-        H_lag = u_lag[:, n:].reshape(t.shape[0], n, n_x)
-        z = s["effort"] - u_lag[:, :n]  # z = tau_meas - G[tau_known]
+        z = s["effort"] - tau_known  # z = tau_meas - tau_known
         duration = t[-1] - self._last_update_t
         if not duration > 0:  # first batch, or time went back at a restart: propagate over the batch's own span
             duration = t[-1] - t[0]
-        report = self.filter.step(H_lag, z, float(duration))
+        report = self.filter.step(H, z, float(duration))
         self._last_update_t = float(t[-1])
         temp = s["temperature"]
         if temp.shape[1] and np.any(np.isfinite(temp)):
@@ -370,6 +377,13 @@ class PayloadFrictionTracker:
             Y_payload=Y_p,
         )
 
+    def _effort_motion(self, s: Mapping[str, Array]) -> EffortMotion:
+        """The pending motion at the efforts' instants, (K, G n) arrays back to :class:`EffortMotion`."""
+        k = s["t"].shape[0]
+        g = self.conditioner.effort_delays_s.shape[0]
+        q, qd, qdd = (np.swapaxes(s[name].reshape(k, g, self.n_actuators), 0, 1) for name in _PENDING_MOTION)
+        return EffortMotion(self.conditioner.effort_delays_s, self.conditioner.effort_group, q, qd, qdd)
+
     # ------------------------------------------------------------------ state
     def save_state(self) -> dict[str, Array]:
         """Everything the tracker carries, as plain arrays (copies). :meth:`restore_state` resumes bit-identically."""
@@ -381,14 +395,12 @@ class PayloadFrictionTracker:
         state["pending_restarts/t_s"] = np.array([r.t_s for _, r in pr], dtype=float)
         state["pending_restarts/gap_s"] = np.array([r.gap_s for _, r in pr], dtype=float)
         state["pending_restarts/reason"] = np.array([_REASONS.index(r.reason) for _, r in pr], dtype=np.int64)
-        state["lag/y"] = self._lag_y.copy()
-        state["lag/t"] = np.array(self._lag_t)
         state["last_update_t"] = np.array(self._last_update_t)
         return state
 
     def restore_state(self, state: Mapping[str, Array]) -> None:
         """Restore a state saved by :meth:`save_state` of a tracker built with the same model and settings."""
-        missing = [k for k in ("filter/x", "filter/P", "filter/R", "lag/y", "lag/t", "last_update_t") if k not in state]
+        missing = [k for k in ("filter/x", "filter/P", "filter/R", "last_update_t") if k not in state]
         if missing:
             raise ConfigurationError(f"tracker state: missing {missing}")
         filter_state = FilterState.from_dict({k: state[f"filter/{k}"] for k in ("x", "P", "R")})
@@ -400,9 +412,15 @@ class PayloadFrictionTracker:
             a = np.asarray(state[f"pending/{k}"], dtype=ref.dtype)
             expect_shape(f"tracker state pending/{k}", a, (None, *ref.shape[1:]))
             pending[k] = a.copy()
-        lag_y = np.asarray(state["lag/y"], dtype=float)
-        if lag_y.shape[0] and self._bandwidth is not None:
-            expect_shape("tracker state lag/y", lag_y, self._bandwidth.shape)
+        n_pending = pending["t"].shape[0]
+        g = self.conditioner.effort_delays_s.shape[0]
+        for k, centre in zip(_PENDING_MOTION, ("q", "qd", "qdd"), strict=True):
+            if f"pending/{k}" in state:
+                a = np.asarray(state[f"pending/{k}"], dtype=float)
+                expect_shape(f"tracker state pending/{k}", a, (n_pending, self._motion_width))
+            else:  # a state saved before the efforts' instants were kept: the centre samples stand in for them
+                a = np.tile(pending[centre], (1, g))
+            pending[k] = a.copy()
         prefix = "conditioner/"
         self.conditioner.restore_state({k[len(prefix) :]: v for k, v in state.items() if k.startswith(prefix)})
         self.filter.state = filter_state
@@ -417,6 +435,4 @@ class PayloadFrictionTracker:
                 strict=True,
             )
         ]
-        self._lag_y = lag_y.copy()
-        self._lag_t = float(state["lag/t"])
         self._last_update_t = float(state["last_update_t"])

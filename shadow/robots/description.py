@@ -48,6 +48,7 @@ from shadow.robots.parameters import (
     Drive,
     HexapodParameters,
     MeasuredQuantity,
+    ReportedEffort,
     RigidPayload,
     default_gravity,
 )
@@ -84,13 +85,14 @@ SCHEMA_UNITS = {
     "n_s_per_m": "newton seconds per metre",
     "rad_s": "radians per second",
     "m_s": "metres per second",
+    "s": "seconds",
 }
 # Suffixes people write for the same quantities in other units; only used to recognise a wrong unit.
 OTHER_UNITS = (
     "mm", "cm", "um", "km", "in", "inch", "inches", "ft", "g", "lb", "lbs", "t", "deg", "degrees", "mrad",
     "g_mm2", "kg_mm2", "g_cm2", "kg_cm2", "lb_in2", "kgcm2", "kgm2", "nmm", "n_mm", "mnm", "ncm", "n_m", "kn",
     "lbf", "mnm_per_a", "nmm_per_a", "n_m_per_a", "nm_a", "khz", "rpm", "mm_per_rev", "in_per_rev", "mm_rev",
-    "mm_s2", "g0", "deg_s", "mm_s", "rad_per_s", "m_per_s", "nm_s_rad", "n_s_mm", "a", "s", "ms",
+    "mm_s2", "g0", "deg_s", "mm_s", "rad_per_s", "m_per_s", "nm_s_rad", "n_s_mm", "a", "ms", "us",
 )  # fmt: skip
 _ALL_UNITS = sorted({*SCHEMA_UNITS, *OTHER_UNITS}, key=len, reverse=True)
 
@@ -475,6 +477,12 @@ def _parse_drives(top: _Table, n: int, keys: tuple[str, ...]) -> list[Drive]:
 
     meas = top.table("measurement")
     quantities = meas.per_actuator_choice("quantity", n, tuple(q.value for q in MeasuredQuantity))
+    reported = meas.per_actuator_choice(
+        "reported_effort", n, tuple(r.value for r in ReportedEffort), default=ReportedEffort.ACTUAL.value
+    )
+    periods: list[float | None] = [None] * n
+    if meas.has("command_period_s"):
+        periods = [float(p) for p in meas.per_actuator("command_period_s", n, non_negative=True)]
     meas.finish()
 
     drives = []
@@ -490,6 +498,8 @@ def _parse_drives(top: _Table, n: int, keys: tuple[str, ...]) -> list[Drive]:
                 rated_effort=float(rated),
                 measured=MeasuredQuantity(quantities[i]),
                 screw_lead_m=v.get("screw_lead_m_per_rev"),
+                reported=ReportedEffort(reported[i]),
+                command_period_s=periods[i],
             )
         )
     return drives
@@ -664,20 +674,28 @@ class _Table:
             )
         return i_c
 
-    def per_actuator(self, key: str, n: int, *, non_negative: bool = False, default: float | None = None) -> Array:
+    def per_actuator(
+        self,
+        key: str,
+        n: int,
+        *,
+        non_negative: bool = False,
+        positive: bool = False,
+        default: float | None = None,
+    ) -> Array:
         """A number for all actuators or a list of n numbers."""
         v = self.raw(key, _MISSING if default is None else default)
         if _is_number(v):
-            return np.full(n, self._checked_number(key, float(v), False, non_negative))
+            return np.full(n, self._checked_number(key, float(v), positive, non_negative))
         if not isinstance(v, list) or len(v) != n or not all(_is_number(x) for x in v):
             self.fail(key, f"must be a number or a list of {n} numbers (one per actuator), got {v!r}")
         for i, x in enumerate(v):
-            self._checked_number(f"{key}[{i + 1}]", float(x), False, non_negative)
+            self._checked_number(f"{key}[{i + 1}]", float(x), positive, non_negative)
         return np.array(v, dtype=float)
 
-    def per_actuator_choice(self, key: str, n: int, choices: tuple[str, ...]) -> list[str]:
+    def per_actuator_choice(self, key: str, n: int, choices: tuple[str, ...], default: str | None = None) -> list[str]:
         """A string for all actuators or a list of n strings, each one of ``choices``."""
-        v = self.raw(key)
+        v = self.raw(key, _MISSING if default is None else default)
         values = [v] * n if isinstance(v, str) else v
         if not isinstance(values, list) or len(values) != n or not all(isinstance(x, str) for x in values):
             self.fail(key, f"must be a string or a list of {n} strings, got {v!r}")

@@ -48,13 +48,28 @@ class MeasuredQuantity(enum.Enum):
     MOTOR_CURRENT = "motor_current"  # torque-producing motor current [A]
 
 
+class ReportedEffort(enum.Enum):
+    """Which effort the streamed value is: what the drive really produced, or what the controller asked for.
+
+    The motion follows the actual effort, so the two relate to it with different timing (see
+    :func:`shadow.robots.drives.reported_effort_delay_s`).
+    """
+
+    ACTUAL = "actual"  # the drive's measured current or effort at the sample instant
+    COMMAND = "command"  # the effort (or current) command the controller sent at the sample instant
+
+
 @dataclass(frozen=True, slots=True)
 class Drive:
     """One actuator's drive train: motor, gearbox and (hexapod) ball screw.
 
     ``gear_ratio`` n is motor radians per joint radian (delta) or motor revolutions per screw
     revolution (hexapod). ``screw_lead_m`` h is platform-side travel per screw revolution [m/rev];
-    ``None`` for a rotary joint.
+    ``None`` for a rotary joint. ``reported`` says whether the streamed effort is the drive's actual effort or
+    the controller's command; ``command_period_s`` is how long the controller holds each effort command (its
+    cycle time), ``None`` for one sample period of the stream (the usual case), 0 for a command updated
+    continuously. Both set when a reported effort belongs to the motion
+    (:func:`shadow.robots.drives.reported_effort_delay_s`).
     """
 
     rotor_inertia_kg_m2: float  # J_m, motor rotor (+ brake, coupling) about the motor axis
@@ -65,6 +80,8 @@ class Drive:
     rated_effort: float  # rated joint torque [N m] or leg force [N]
     measured: MeasuredQuantity = MeasuredQuantity.EFFORT
     screw_lead_m: float | None = None  # h [m/rev]; hexapod only
+    reported: ReportedEffort = ReportedEffort.ACTUAL  # what the streamed effort (or current) is
+    command_period_s: float | None = None  # effort-command hold period [s]; None: the stream's sample period
 
 
 @dataclass(frozen=True, slots=True)

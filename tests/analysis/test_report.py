@@ -36,8 +36,8 @@ def _analysed(stream: SyntheticStream, *, lag: bool = True) -> tuple[RobotMonito
     batches = stream.batches(ROBOT, 10)
     rec = Recording(Path("synthetic.jsonl"), "jsonl", ROBOT, tuple(batches), tuple(range(1, len(batches) + 1)))
     settings = default_settings(stream.description)
-    if not lag:  # tests/synthetic.py applies no current-loop lag
-        tracker = dataclasses.replace(settings.tracker, current_loop_bandwidth_hz=None)
+    if not lag:  # tests/synthetic.py's efforts belong to the motion at their own instants (no loop, no hold)
+        tracker = dataclasses.replace(settings.tracker, current_loop_bandwidth_hz=None, command_period_s=None)
         settings = dataclasses.replace(settings, tracker=tracker)
     monitor = RobotMonitor(ROBOT, stream.description, None, settings)
     return monitor, analyse(rec, monitor)

@@ -21,7 +21,7 @@ from shadow.estimation.tracker import PayloadFrictionTracker, TrackerSettings
 from shadow.ingest.wire import PositionUnit, SampleBatch, encode_json
 from shadow.robots.delta import DeltaModel
 from shadow.robots.description import EXAMPLES_DIR, build_model, load_description
-from shadow.robots.drives import current_from_effort
+from shadow.robots.drives import current_from_effort, reported_effort_delays_s
 from shadow.robots.friction import friction_effort
 from shadow.robots.parameters import MeasuredQuantity
 
@@ -51,9 +51,15 @@ def delta_efforts(rng: np.random.Generator, n_samples: int, extra_kg: float = 0.
     w = 2 * np.pi * np.array([1.1, 1.7, 2.3])
     a = np.array([0.3, 0.25, 0.3])
     ph = np.outer(t, w) + np.array([0.0, 1.0, 2.0])
-    q, qd, qdd = q0 + a * np.sin(ph), a * w * np.cos(ph), -a * w**2 * np.sin(ph)
+    q = q0 + a * np.sin(ph)
     grip = np.floor(t / 0.35) % 2 == 1
-    tau_known, y_p = model.rigid_regressor(q, qd, qdd)
+    # the description's drives: actual efforts sampled under a command held one sample, 0.31 ms behind the motion
+    # (shadow.robots.drives.reported_effort_delay_s), so each effort is the motion's at t - d
+    d = reported_effort_delays_s(load_description(DELTA_FILE).parameters.drives, DT_S)
+    assert np.ptp(d) == 0.0 and 2e-4 < d[0] < 4e-4
+    ph = np.outer(t - d[0], w) + np.array([0.0, 1.0, 2.0])
+    qe, qd, qdd = q0 + a * np.sin(ph), a * w * np.cos(ph), -a * w**2 * np.sin(ph)
+    tau_known, y_p = model.rigid_regressor(qe, qd, qdd)
     tau = tau_known + y_p[:, :, 0] * (TOOL_KG + extra_kg + WORK_KG * grip)[:, None]
     tau = tau + friction_effort(qd, THETA_F, smooth_velocity=V_S)
     if gain is not None:
@@ -215,7 +221,7 @@ def hexapod_recording(path: Path, rng: np.random.Generator) -> Path:
 def test_hexapod_run(tmp_path: Path, rng: np.random.Generator, capsys: pytest.CaptureFixture[str]) -> None:
     rec = hexapod_recording(tmp_path / "hex.jsonl", rng)
     out_file = tmp_path / "hex.json"
-    assert run_cli(["commission", str(HEXAPOD_FILE), str(rec), "-o", str(out_file), "--no-lag"]) == 0
+    assert run_cli(["commission", str(HEXAPOD_FILE), str(rec), "-o", str(out_file), "--ideal-drives"]) == 0
     assert "payload model: full" in capsys.readouterr().out
     baseline, doc = commission.read_baseline_file(out_file)
     nominal = load_description(HEXAPOD_FILE).tool.payload_parameters()

@@ -1,4 +1,5 @@
-"""Savitzky-Golay conditioning: weights, delay, gain, exactness, gaps, streaming and state."""
+"""Savitzky-Golay conditioning: weights, delay, gain, exactness, gaps, streaming, state, and the motion at the
+instants the efforts belong to."""
 
 from __future__ import annotations
 
@@ -13,10 +14,14 @@ from shadow.estimation.conditioning import (
     REASON_NOT_INCREASING,
     ConditionedBatch,
     Conditioner,
-    lag_like_measurement,
+    EffortMotion,
+    effort_groups,
     local_derivatives,
+    local_motion,
+    regressor_at_efforts,
     savgol_weights,
 )
+from shadow.robots.description import build_model, example_paths, load_description
 
 DT_S = 1.0e-3
 
@@ -190,25 +195,107 @@ def test_rejects_bad_input(rng: np.random.Generator) -> None:
         Conditioner(2, {}, half_window=3, poly_order=2, max_gap_s=0.0)
 
 
-def test_prediction_lag_matches_zero_order_hold_recursion(rng: np.random.Generator) -> None:
-    # reference: exact discretisation of a first-order lag with zero-order-held input, y_k = y_{k-1} +
-    # (1 - exp(-dt_k / T)) (u_k - y_{k-1}), T = 1 / (2 pi f) (Franklin, Powell and Workman, "Digital Control of
-    # Dynamic Systems", 3rd ed., 1998, sec. 6.2, from memory), run sample by sample; restart settled at segment starts
-    n_samples, f = 300, np.array([40.0, 80.0, 200.0])
-    t = np.cumsum(DT_S * (1.0 + 0.3 * rng.uniform(-1, 1, n_samples)))
-    u = rng.normal(size=(n_samples, 3))
-    start = np.zeros(n_samples, dtype=bool)
-    start[[0, 170]] = True
-    y = np.empty_like(u)
-    for k in range(n_samples):
-        if start[k]:
-            y[k] = u[k]
-        else:
-            y[k] = y[k - 1] + (1.0 - np.exp(-2 * np.pi * f * (t[k] - t[k - 1]))) * (u[k] - y[k - 1])
-    whole, y_last, t_last = lag_like_measurement(t, u, start, f, None, np.nan)
-    assert_allclose(whole, y, rtol=1e-12, atol=1e-12)
-    first, y_mid, t_mid = lag_like_measurement(t[:100], u[:100], start[:100], f, None, np.nan)
-    second, y_end, t_end = lag_like_measurement(t[100:], u[100:], start[100:], f, y_mid, t_mid)
-    assert_allclose(np.concatenate([first, second]), whole, rtol=1e-12, atol=1e-12)
-    assert_array_equal(y_end, y_last)
-    assert t_end == t_last == t[-1]
+@pytest.mark.parametrize("d", [2, 3, 5])
+def test_local_motion_exact_on_polynomials_off_centre(rng: np.random.Generator, d: int) -> None:
+    # reference: numpy.polynomial.Polynomial and its derivatives; the least-squares polynomial of degree d
+    # reproduces a polynomial of degree <= d, so its value and derivatives anywhere in the window are exact
+    width, n_windows = 11, 30
+    t_win = np.sort(rng.uniform(0.0, 0.02, (n_windows, width)), axis=1) + 3.0
+    poly = [np.polynomial.Polynomial(rng.normal(size=d + 1) * [1.0, 50.0, 2e3, 5e4, 1e6, 3e7][: d + 1]) for _ in "ab"]
+    centre = t_win[:, width // 2]
+    y_win = np.stack([p(t_win - 3.0) for p in poly], axis=2)
+    offset = rng.uniform(-1.0, 1.0, n_windows) * 0.5 * (t_win[:, -1] - t_win[:, 0])  # anywhere inside the window
+    y, yd, ydd = local_motion(t_win, y_win, d, offset)
+    at = centre + offset - 3.0
+    for i, p in enumerate(poly):
+        assert_allclose(y[:, i], p(at), rtol=1e-9, atol=1e-9 * np.abs(p(at)).max())
+        assert_allclose(yd[:, i], p.deriv(1)(at), rtol=1e-7, atol=1e-7 * np.abs(p.deriv(1)(at)).max())
+        assert_allclose(ydd[:, i], p.deriv(2)(at), rtol=1e-6, atol=1e-6 * np.abs(p.deriv(2)(at)).max())
+    # at offset 0 the derivatives are those of local_derivatives
+    _, yd0, ydd0 = local_motion(t_win, y_win, d, np.zeros(n_windows))
+    ref_d, ref_dd = local_derivatives(t_win, y_win, d)
+    assert_allclose(yd0, ref_d, rtol=1e-10, atol=1e-10 * np.abs(ref_d).max())
+    assert_allclose(ydd0, ref_dd, rtol=1e-10, atol=1e-10 * np.abs(ref_dd).max())
+
+
+def test_effort_motion_at_the_declared_delays(rng: np.random.Generator) -> None:
+    # three actuators, two distinct delays: two groups; positions a cubic in time, so the window polynomial (d = 3)
+    # is exact and the motion at t_k - d is the cubic's there (numpy.polynomial reference)
+    n_samples = 400
+    t = np.cumsum(DT_S * (1.0 + 0.2 * rng.uniform(-1, 1, n_samples)))
+    poly = [np.polynomial.Polynomial(rng.normal(size=4) * [1.0, 1.0, 1.0, 0.5]) for _ in range(3)]
+    q = np.stack([p(t) for p in poly], axis=1)
+    delays = np.array([3e-4, -7e-4, 3e-4])
+    c = Conditioner(3, {"effort": 3}, half_window=5, poly_order=3, max_gap_s=0.01, effort_delay_s=delays)
+    out = c.feed(t, q, {"effort": q})
+    em = out.effort_motion
+    assert_array_equal(em.delay_s, [3e-4, -7e-4])
+    assert_array_equal(em.group, [0, 1, 0])
+    assert em.q.shape == em.qd.shape == em.qdd.shape == (2, out.n_samples, 3)
+    for g, d in enumerate(em.delay_s):
+        for i, p in enumerate(poly):
+            assert_allclose(em.q[g, :, i], p(out.t - d), rtol=1e-9, atol=1e-9)
+            assert_allclose(em.qd[g, :, i], p.deriv(1)(out.t - d), rtol=1e-7, atol=1e-7)
+            assert_allclose(em.qdd[g, :, i], p.deriv(2)(out.t - d), rtol=1e-6, atol=1e-6)
+    own = em.own_velocity()  # each actuator's velocity at its own effort's instant
+    assert_allclose(own[:, 1], poly[1].deriv(1)(out.t + 7e-4), rtol=1e-7, atol=1e-7)
+    assert_allclose(own[:, 2], poly[2].deriv(1)(out.t - 3e-4), rtol=1e-7, atol=1e-7)
+
+
+def test_zero_delay_is_the_centre_sample(rng: np.random.Generator) -> None:
+    t, q, effort, temp = stream(rng, 300)
+    out = feed(make_conditioner(), t, q, effort, temp)
+    em = out.effort_motion
+    assert em.n_groups == 1 and em.delay_s[0] == 0.0
+    assert_array_equal(em.q[0], out.q)  # the raw centre samples, not the fitted values
+    assert_array_equal(em.qd[0], out.qd)
+    assert_array_equal(em.qdd[0], out.qdd)
+    assert_array_equal(effort_groups(None, 2)[1], [0, 0])
+
+
+def test_effort_motion_split_invariance(rng: np.random.Generator) -> None:
+    t, q, effort, temp = stream(rng, 600)
+    t[300:] += 0.05  # a gap
+    delays = np.array([4e-4, -2e-4])
+
+    def conditioner() -> Conditioner:
+        return Conditioner(
+            2, {"effort": 2, "temp": 1}, half_window=5, poly_order=3, max_gap_s=0.01, effort_delay_s=delays
+        )
+
+    whole = feed(conditioner(), t, q, effort, temp).effort_motion
+    c = conditioner()
+    cuts = np.unique(np.concatenate([[0, 1, 2, 7], rng.integers(0, 600, 30), [600]]))
+    parts = [
+        feed(c, t[a:b], q[a:b], effort[a:b], temp[a:b]).effort_motion for a, b in zip(cuts[:-1], cuts[1:], strict=True)
+    ]
+    for name in ("q", "qd", "qdd"):
+        chunked = np.concatenate([getattr(p, name) for p in parts], axis=1)
+        assert_allclose(chunked, getattr(whole, name), rtol=1e-12, atol=1e-12, err_msg=name)
+
+
+def test_delay_outside_the_window_is_refused(rng: np.random.Generator) -> None:
+    t, q, effort, temp = stream(rng, 50)
+    c = Conditioner(
+        2, {"effort": 2, "temp": 1}, half_window=2, poly_order=2, max_gap_s=0.01, effort_delay_s=np.array([0.0, 3e-3])
+    )
+    with pytest.raises(ConfigurationError, match=r"effort_delay_s: 0.003 s reaches outside the conditioning window"):
+        feed(c, t, q, effort, temp)
+    with pytest.raises(ShapeError, match=r"effort_delay_s: expected shape \(2,\)"):
+        Conditioner(2, {}, half_window=3, poly_order=2, max_gap_s=0.01, effort_delay_s=np.zeros(3))
+
+
+def test_regressor_rows_come_from_each_actuators_own_instant(rng: np.random.Generator) -> None:
+    # identity: actuator i's rows equal the model's rigid regressor evaluated at its group's motion
+    model = build_model(load_description(next(p for p in example_paths() if "delta" in p.name)))
+    n_samples = 7
+    q0 = model.inverse_kinematics(np.array([[0.0, 0.0, -0.8]]))
+    q = q0 + 0.05 * rng.normal(size=(2, n_samples, 3))
+    qd, qdd = rng.normal(size=(2, n_samples, 3)), 10.0 * rng.normal(size=(2, n_samples, 3))
+    motion = EffortMotion(np.array([1e-4, -5e-4]), np.array([1, 0, 1]), q, qd, qdd)
+    tau_known, y_p, own_qd = regressor_at_efforts(model, motion)
+    for g, rows in ((0, [1]), (1, [0, 2])):
+        tk, yp = model.rigid_regressor(q[g], qd[g], qdd[g])
+        assert_array_equal(tau_known[:, rows], tk[:, rows])
+        assert_array_equal(y_p[:, rows], yp[:, rows])
+        assert_array_equal(own_qd[:, rows], qd[g][:, rows])

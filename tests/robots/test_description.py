@@ -22,7 +22,7 @@ from shadow.robots.description import (
     parse_description,
 )
 from shadow.robots.hexapod import HexapodModel
-from shadow.robots.parameters import DeltaParameters, HexapodParameters, MeasuredQuantity
+from shadow.robots.parameters import DeltaParameters, HexapodParameters, MeasuredQuantity, ReportedEffort
 
 DELTA = (EXAMPLES_DIR / "delta_packaging.toml").read_text()
 HEXAPOD = (EXAMPLES_DIR / "hexapod_inspection.toml").read_text()
@@ -111,6 +111,42 @@ def test_measurement_per_actuator() -> None:
     text = edit(DELTA, 'quantity = "motor_current"', 'quantity = ["motor_current", "effort", "effort"]')
     p = parse_description(text).parameters
     assert [dr.measured for dr in p.drives] == [MeasuredQuantity.MOTOR_CURRENT] + [MeasuredQuantity.EFFORT] * 2
+
+
+def test_reported_effort_and_command_period() -> None:
+    # default: the drives report their actual effort, and no command hold is declared
+    for drive in parse_description(HEXAPOD).parameters.drives:
+        assert drive.reported is ReportedEffort.ACTUAL and drive.command_period_s is None
+    text = edit(
+        DELTA,
+        'quantity = "motor_current"',
+        'quantity = "motor_current"\nreported_effort = ["actual", "command", "actual"]\ncommand_period_s = 0.001',
+    )
+    drives = parse_description(text).parameters.drives
+    assert [d.reported for d in drives] == [ReportedEffort.ACTUAL, ReportedEffort.COMMAND, ReportedEffort.ACTUAL]
+    assert [d.command_period_s for d in drives] == [0.001] * 3
+    text = edit(
+        HEXAPOD, 'quantity = "effort"', 'quantity = "effort"\ncommand_period_s = [5e-4, 5e-4, 5e-4, 1e-3, 1e-3, 1e-3]'
+    )
+    assert [d.command_period_s for d in parse_description(text).parameters.drives] == [5e-4] * 3 + [1e-3] * 3
+
+
+@pytest.mark.parametrize(
+    ("line", "message"),
+    [
+        ('reported_effort = "estimated"', r"measurement\.reported_effort: must be one of 'actual', 'command'"),
+        ("command_period_s = -1e-3", r"measurement\.command_period_s: must be >= 0, got -0.001"),
+        ("command_period_s = [1e-3, 1e-3]", r"measurement\.command_period_s: must be a number or a list of 3"),
+        (
+            "command_period_ms = 1.0",
+            r"measurement\.command_period_ms: wrong unit, this schema takes command_period_s \(seconds\)",
+        ),
+    ],
+)
+def test_reported_effort_refusals(line: str, message: str) -> None:
+    text = edit(DELTA, 'quantity = "motor_current"', f'quantity = "motor_current"\n{line}')
+    with pytest.raises(DescriptionError, match=message):
+        parse_description(text)
 
 
 # ------------------------------------------------------------------------------------------ refusals

@@ -1,16 +1,19 @@
-"""Drive trains: current <-> effort, reflected inertia, the ball-screw relation and the current-loop lag."""
+"""Drive trains: current <-> effort, reflected inertia, the ball-screw relation, the current-loop lag and when a
+reported effort belongs to the motion."""
 
 from __future__ import annotations
+
+import dataclasses
 
 import numpy as np
 import pytest
 import scipy.integrate
 import scipy.signal
-from numpy.testing import assert_allclose
+from numpy.testing import assert_allclose, assert_array_equal
 
 from shadow.errors import OutOfRangeError, ShapeError
 from shadow.robots import drives
-from shadow.robots.parameters import Drive, MeasuredQuantity
+from shadow.robots.parameters import Drive, MeasuredQuantity, ReportedEffort
 
 
 def rotary_drive(**kw: float) -> Drive:
@@ -229,3 +232,85 @@ def test_lag_errors() -> None:
         drives.current_loop_lag(np.zeros((3, 1)), np.array([1e-3, -1e-3, 1e-3]), np.ones(1))
     with pytest.raises(OutOfRangeError, match="bandwidth_hz: must be finite and > 0"):
         drives.current_loop_lag(np.zeros((3, 1)), np.ones(3), np.zeros(1))
+
+
+# ------------------------------------------------------------------------------- when a reported effort belongs
+
+
+@pytest.mark.parametrize(
+    ("bandwidth_hz", "period_s"), [(800.0, 1e-3), (300.0, 1e-3), (50.0, 1e-3), (5000.0, 1e-3), (1000.0, 2.5e-4)]
+)
+def test_reported_effort_delay_against_the_exact_held_response(bandwidth_hz: float, period_s: float) -> None:
+    # Reference: the exact response of a first-order lag to a held input (physical law: on [t_k, t_k+1) with
+    # u_k held, y(t) = u_k + (y(t_k) - u_k) exp(-(t - t_k) / T)) to a slow sine command. The motion follows y(t);
+    # its smooth part is y's fundamental, whose Fourier coefficient over whole periods is the sum of the
+    # closed-form integrals of each hold. The actual effort sampled at t_k (before u_k acts) and the command
+    # u_k must lag that fundamental by the function's d, to order w^2.
+    w = 2.0 * np.pi * 2.0  # 2 Hz: far below the loop and the sample rate
+    tc = 1.0 / (2.0 * np.pi * bandwidth_hz)
+    n_warm, n_hold = round(1.0 / period_s), round(2.0 / period_s)  # 1 s to settle, then 2 s = 4 periods
+    t_k = period_s * np.arange(n_warm + n_hold + 1)
+    u = np.sin(w * t_k)
+    a = np.exp(-period_s / tc)
+    y_k = np.empty(t_k.shape[0])  # y(t_k), the value when u_k takes over
+    y_k[0] = u[0]
+    for k in range(t_k.shape[0] - 1):  # exact step with u_k held
+        y_k[k + 1] = u[k] + (y_k[k] - u[k]) * a
+    k = slice(n_warm, n_warm + n_hold)
+    c = y_k[k] - u[k]  # transient at the start of each hold
+    lam = 1.0 / tc + 1j * w
+    # int over [t_k, t_k + h) of (u_k + c_k exp(-(t - t_k) / T)) exp(-j w t) dt, in closed form
+    smooth = np.sum(
+        np.exp(-1j * w * t_k[k])
+        * (u[k] * (1.0 - np.exp(-1j * w * period_s)) / (1j * w) + c * -np.expm1(-lam * period_s) / lam)
+    )
+    for kind, samples in ((ReportedEffort.ACTUAL, y_k[k]), (ReportedEffort.COMMAND, u[k])):
+        sampled = np.sum(samples * np.exp(-1j * w * t_k[k]))  # the same Fourier coefficient of the samples
+        measured = np.angle(smooth / sampled) / w  # samples = smooth(t - d): the phase difference over w
+        d = drives.reported_effort_delay_s([kind], [bandwidth_hz], [period_s])[0]
+        # to first order in w: the lag's own delay atan(w T) / w is T (1 - (w T)^2 / 3), 5e-4 short at 50 Hz
+        assert_allclose(d, measured, rtol=1e-3, atol=1e-9, err_msg=str(kind))
+
+
+def test_reported_effort_delay_limits() -> None:
+    # closed-form limits of d = T (x coth x - 1), x = h / (2 T), and d = -(h / 2 + T) (drives module docstring)
+    h, f = 1e-3, 800.0
+    tc = 1.0 / (2.0 * np.pi * f)
+    actual, command = ReportedEffort.ACTUAL, ReportedEffort.COMMAND
+    d = drives.reported_effort_delay_s([actual, command], None, [h, h])  # ideal loop: the hold alone
+    assert_allclose(d, [0.5 * h, -0.5 * h], rtol=1e-15)
+    d = drives.reported_effort_delay_s([actual, command], [f, f], None)  # continuous command: the loop alone
+    assert_allclose(d, [0.0, -tc], rtol=1e-15, atol=0.0)
+    slow = 1.0 / (2.0 * np.pi * 100.0 * h)  # T = 100 h: d ~ h^2 / (12 T)
+    assert_allclose(drives.reported_effort_delay_s([actual], [slow], [h]), [h / 1200.0], rtol=1e-4)
+    fast = drives.reported_effort_delay_s([actual], [1e9], [h])  # T << h: h / 2 - T
+    assert_allclose(fast, [0.5 * h - 1.0 / (2.0 * np.pi * 1e9)], rtol=1e-12)
+    # the example delta (800 Hz, 1 kHz command): 0.31 ms, as the module docstring says
+    assert_allclose(drives.reported_effort_delay_s([actual], [f], [h]), [3.08e-4], rtol=2e-3)
+
+
+def test_reported_effort_delays_of_described_drives() -> None:
+    a = rotary_drive()
+    b = dataclasses.replace(a, reported=ReportedEffort.COMMAND, command_period_s=1e-3, current_loop_bandwidth_hz=400.0)
+    c = dataclasses.replace(a, command_period_s=0.0)  # updated continuously: the actual effort is the motion's
+    d = drives.reported_effort_delays_s([a, b, c], 1e-3)  # a holds its command one sample (not declared)
+    h, tc = 1e-3, 1.0 / (2.0 * np.pi * a.current_loop_bandwidth_hz)
+    x = h / (2.0 * tc)
+    assert_allclose(d, [tc * (x / np.tanh(x) - 1.0), -(0.5e-3 + 1.0 / (2.0 * np.pi * 400.0)), 0.0], rtol=1e-12)
+    reported, periods = drives.declared_effort_timing([a, b, c], 2e-3)
+    assert reported == (ReportedEffort.ACTUAL, ReportedEffort.COMMAND, ReportedEffort.ACTUAL)
+    assert_array_equal(periods, [2e-3, 1e-3, 0.0])
+    with pytest.raises(OutOfRangeError, match="sample_period_s: must be finite and > 0"):
+        drives.declared_effort_timing([a], 0.0)
+
+
+def test_reported_effort_delay_errors() -> None:
+    actual = ReportedEffort.ACTUAL
+    with pytest.raises(ShapeError, match=r"bandwidth_hz: expected shape \(2,\)"):
+        drives.reported_effort_delay_s([actual, actual], [800.0], None)
+    with pytest.raises(OutOfRangeError, match="command_period_s: must be finite and >= 0"):
+        drives.reported_effort_delay_s([actual], [800.0], [-1e-3])
+    with pytest.raises(OutOfRangeError, match="bandwidth_hz: must be > 0"):
+        drives.reported_effort_delay_s([actual], [0.0], None)
+    with pytest.raises(OutOfRangeError, match="reported: expected ReportedEffort values"):
+        drives.reported_effort_delay_s(["actual"], [800.0], None)  # type: ignore[list-item]
