@@ -319,9 +319,8 @@ def test_the_compliant_hexapods_mode_is_tracked_at_its_closed_loop_frequency(kno
     for f, z in zip(freq, damp, strict=True):
         # the pose moves along the motion and the reference is the home pose's; with the quintic conditioner and
         # the efforts' timing the two windows measured +2.3 % and +5.4 % (the cubic without timing gave +1.0 %, +3.9 %)
-        print(f"mode {f['value']:.2f} Hz against {f_ref:.2f} Hz, damping {z['value']:.4f} against {zeta_ref:.4f}")
         assert f["value"] == pytest.approx(f_ref, rel=0.07)
-        assert z["value"] == pytest.approx(zeta_ref, rel=0.35)  # measured +18 %, +19 % (two modes merge into one peak)
+        assert z["value"] == pytest.approx(zeta_ref, rel=0.35)  # measured +14 %, +12 % (two modes merge into one peak)
     assert drift_events(knocked["before"], "structural_mode") == []
 
 
