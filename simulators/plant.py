@@ -37,7 +37,9 @@ with a coupling). It makes the transient's contribution exact for any step, up t
 
 M and h for a per-system payload (the model's methods take one theta_p for all rows) come from the linearity
 in theta_p: ``h = tau_known + Y_p theta_p`` of the rigid regressor at qdd = 0, and M by the cheaper exact route
-of :func:`mass_terms`.
+of :func:`mass_terms`; when every row carries the same payload (always for B = 1) the model's own ``M(q, theta)``
+and ``h(q, qd)`` are called once each, the cheapest route. A hexapod plant built by :func:`simulators.run.demo_loop`
+integrates :class:`simulators.kinematics.WarmStartHexapod`, whose forward kinematics starts from the last pose.
 
 State layout: ``position = [q]`` (B, n) or ``[q, q_m]`` (B, 2n); ``velocity`` likewise.
 """
@@ -175,24 +177,44 @@ class PlantState:
     mass_history: tuple[Array, float, Array] | None = None  # (M, t, theta_p) at the last step start (EVERY_STEP)
 
 
+def shared_payload(theta_p: Array) -> Array | None:
+    """theta_p[0] (p,) when every row of theta_p (B, p) is the same payload (always for B = 1), else None."""
+    first = theta_p[0]
+    if theta_p.shape[0] == 1 or bool((theta_p == first).all()):
+        return first
+    return None
+
+
 def bias_terms(mechanism: Mechanism, q: Array, qd: Array, theta_p: Array) -> Array:
-    """h (B, n) for a payload per system: ``tau_known + Y_p theta_p`` of the regressor at qdd = 0 (B rows)."""
+    """h (B, n) for a payload per system.
+
+    One payload for all rows (:func:`shared_payload`): the model's own ``h(q, qd)``; else
+    ``tau_known + Y_p theta_p`` of the regressor at qdd = 0 (B rows). Both are the rigid model's h.
+    """
+    theta = shared_payload(theta_p)
+    if theta is not None:
+        return mechanism.bias_efforts(q, qd, theta)
     tau_known, y_p = mechanism.rigid_regressor(q, qd, np.zeros_like(q))
     return tau_known + np.einsum("bap,bp->ba", y_p, theta_p)
 
 
 def mass_terms(mechanism: Mechanism, q: Array, theta_p: Array, *, route: str = "auto") -> Array:
-    """M (B, n, n) for a payload per system, by the cheaper of two exact routes.
+    """M (B, n, n) for a payload per system, by the cheapest of three exact routes.
 
+    One payload for all rows (:func:`shared_payload`): one call of the model's ``M(q, theta)`` ("shared").
     M is affine in theta_p: ``M(q, theta) = M(q, 0) + sum_j theta_j (M(q, e_j) - M(q, 0))`` (p + 1 calls of
     B rows, cheap for the delta's p = 1); or from the regressor, column i of M is
     ``tau(q, 0, e_i) - tau(q, 0, 0)`` (one call of B (n + 1) rows, cheaper for the hexapod's p = 10).
-    ``route``: "auto" (the cheaper), "affine" or "regressor".
+    ``route``: "auto" (the cheapest that applies), "affine" or "regressor".
     """
     b, n = q.shape
     p = theta_p.shape[1]
     if route not in ("auto", "affine", "regressor"):
         raise ConfigurationError(f"route: expected 'auto', 'affine' or 'regressor', got {route!r}")
+    if route == "auto":
+        theta = shared_payload(theta_p)
+        if theta is not None:
+            return mechanism.mass_matrix(q, theta)
     if route == "affine" or (route == "auto" and p + 1 <= n + 1):
         m0 = mechanism.mass_matrix(q, np.zeros(p))
         m = m0.copy()
@@ -292,6 +314,8 @@ class Plant:
         self._jr = np.asarray(config.rotor_inertia, dtype=float)
         self._coupling = config.coupling
         self._transient = transient_weights(method, self._tc, self.internal_step_s)  # (w_v, w_q) per actuator
+        self._jr_diag = np.diag(self._jr)[None]  # (1, n, n) diag J_r
+        self._decay: dict[float, Array] = {}  # exp(-t / T_c) (n,) by elapsed time t, the same few t every step
 
     # ------------------------------------------------------------------------------------------ set-up
     def initial_state(
@@ -377,7 +401,7 @@ class Plant:
             raise ConfigurationError("coupling: missing")
         qm, qdm = position[:, n:], velocity[:, n:]
         tau_c = cp.effort(qm - q, qdm - qd)  # coupling effort, motor side on load side
-        m_load = m - np.diag(self._jr)[None]  # load side: the model's M without the rotors
+        m_load = m - self._jr_diag  # load side: the model's M without the rotors
         qdd = np.linalg.solve(m_load, (tau_c + tau_ext - h)[..., None])[..., 0]
         qddm = (
             effort - self.friction_effort(qdm, temperature_c) - tau_c
@@ -386,8 +410,12 @@ class Plant:
 
     def effort_at(self, effort0: Array, command: Array, elapsed_s: float) -> Array:
         """tau_a after ``elapsed_s`` with u held: u + (tau_a0 - u) exp(-t / T_c) (exact first-order lag)."""
-        with np.errstate(divide="ignore", over="ignore"):
-            decay = np.where(self._tc > 0.0, np.exp(-elapsed_s / np.where(self._tc > 0.0, self._tc, 1.0)), 0.0)
+        decay = self._decay.get(elapsed_s)
+        if decay is None:
+            with np.errstate(divide="ignore", over="ignore"):
+                decay = np.where(self._tc > 0.0, np.exp(-elapsed_s / np.where(self._tc > 0.0, self._tc, 1.0)), 0.0)
+            if len(self._decay) < 64:  # stage offsets repeat every step; keep the table small for odd calls
+                self._decay[elapsed_s] = decay
         return command + (effort0 - command) * decay
 
     def _correct_transient(
@@ -440,23 +468,26 @@ class Plant:
 
         hold = self.mass_update is MassUpdate.EVERY_STEP
         history = state.mass_history
-        # (M_k, dM/dt estimate, t_k) for the present step when M is extrapolated (MassUpdate.EVERY_STEP)
+        # (M_k, dM/dt estimate, s_k) for the present step when M is extrapolated (MassUpdate.EVERY_STEP)
         held: list[tuple[Array, Array, float] | None] = [None]
 
-        def extrapolate(q: Array, t_k: float) -> None:
+        # The integrator runs on the time s = t - t_0 since the sample's start, so the stage offsets (k h, k h + h/2,
+        # ...) are the same floats every sample and the lag's decay factors come from a table (see effort_at).
+        def extrapolate(q: Array, s_k: float) -> None:
             nonlocal history
             m_k = mass_terms(self.mechanism, q, theta_p)
+            t_k = t0 + s_k
             # extrapolate only along the same payload (a payload change is a jump, not a rate)
             use = history is not None and t_k > history[1] and np.array_equal(history[2], theta_p)
             slope = (m_k - history[0]) / (t_k - history[1]) if use and history is not None else np.zeros_like(m_k)
-            held[0] = (m_k, slope, t_k)
+            held[0] = (m_k, slope, s_k)
             history = (m_k, t_k, theta_p)
 
-        def accel(t: float, pos: Array, vel: Array) -> Array:
-            tau_a = self.effort_at(effort0, command, t - t0)
+        def accel(s: float, pos: Array, vel: Array) -> Array:
+            tau_a = self.effort_at(effort0, command, s)
             h_m = held[0]
-            m = None if h_m is None else h_m[0] + h_m[1] * (t - h_m[2])  # M_k + (M_k - M_k-1)/h (t - t_k)
-            return self.acceleration(pos, vel, tau_a, theta_p, temperature, wrench(t), mass_matrix=m)
+            m = None if h_m is None else h_m[0] + h_m[1] * (s - h_m[2])  # M_k + (M_k - M_k-1)/h (t - t_k)
+            return self.acceleration(pos, vel, tau_a, theta_p, temperature, wrench(t0 + s), mass_matrix=m)
 
         correct = bool(np.any(self._transient[0] != 0.0) or np.any(self._transient[1] != 0.0))
 
@@ -475,8 +506,8 @@ class Plant:
         if self.method is Method.SYMPLECTIC:
             for k in range(n_steps):
                 if hold:
-                    extrapolate(pos[:, : self.n], t0 + k * step)
-                pos_next, vel_next = symplectic_euler_step(accel, t0 + k * step, pos, vel, step)
+                    extrapolate(pos[:, : self.n], k * step)
+                pos_next, vel_next = symplectic_euler_step(accel, k * step, pos, vel, step)
                 pos, vel = corrected(pos_next, vel_next, pos, k)
         else:
             f = second_order_derivative(accel, d)
@@ -484,8 +515,8 @@ class Plant:
             stepper = rk4_step if self.method is Method.RK4 else heun_step
             for k in range(n_steps):
                 if hold:
-                    extrapolate(x[:, : self.n], t0 + k * step)
-                x_next = stepper(f, t0 + k * step, x, step)
+                    extrapolate(x[:, : self.n], k * step)
+                x_next = stepper(f, k * step, x, step)
                 pos_next, vel_next = corrected(x_next[:, :d], x_next[:, d:], x[:, :d], k)
                 x = np.concatenate([pos_next, vel_next], axis=1)
             pos, vel = x[:, :d], x[:, d:]

@@ -37,6 +37,7 @@ from simulators.effects import (
     encoder_count_size,
     quantise,
 )
+from simulators.kinematics import plant_mechanism
 from simulators.plant import MassUpdate, Plant, PlantConfig, PlatformPulse
 from simulators.trajectories import PathSample, SegmentPath, pose_motion
 
@@ -344,7 +345,7 @@ def demo_loop(
     description's nominal Coulomb and viscous friction as feed-forward; the plant's friction is the Stribeck
     curve built on the same nominal values, so the two differ by the Stribeck hump and the heating.
     """
-    model = build_model(description)
+    model = plant_mechanism(build_model(description))  # warm-started forward kinematics for a hexapod
     drives = description.parameters.drives
     n = len(drives)
     nominal = description.friction

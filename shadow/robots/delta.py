@@ -57,6 +57,7 @@ from shadow.errors import (
     expect_shape,
 )
 from shadow.robots.parameters import DeltaParameters
+from shadow.robots.rotations import cross
 
 Array = NDArray[np.float64]
 ForearmModel = Literal["rod", "lumped"]
@@ -99,20 +100,13 @@ def _as_batch(name: str, a: Array, width: int = 3) -> Array:
     return arr
 
 
-def _cross(a: Array, b: Array) -> Array:
-    """Cross product over the last axis (cheaper than np.cross for small batches)."""
-    a0, a1, a2 = a[..., 0], a[..., 1], a[..., 2]
-    b0, b1, b2 = b[..., 0], b[..., 1], b[..., 2]
-    return np.stack([a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0], axis=-1)
-
-
 def _inverse_3x3(A: Array) -> tuple[Array, Array]:
     """(A^-1 (N, 3, 3), det A (N,)) by the adjugate: columns of A^-1 are a1 x a2, a2 x a0, a0 x a1 over det.
 
     Rows a_i of A; det A = a0 . (a1 x a2). Callers check the conditioning before using the inverse.
     """
     a0, a1, a2 = A[:, 0], A[:, 1], A[:, 2]
-    adj = np.stack([_cross(a1, a2), _cross(a2, a0), _cross(a0, a1)], axis=2)  # adj(A), columns
+    adj = np.stack([cross(a1, a2), cross(a2, a0), cross(a0, a1)], axis=2)  # adj(A), columns
     det = np.einsum("nk,nk->n", a0, adj[:, :, 0])
     with np.errstate(divide="ignore", invalid="ignore"):
         return adj / det[:, None, None], det
@@ -270,7 +264,7 @@ class DeltaModel:
             n = int(np.argmax(j_ <= 1e-12 * (1.0 + dist)))
             raise SingularPoseError(f"q[{n}]: the forearm sphere centres are collinear")
         ey = ey_raw / j_[:, None]
-        ez = _cross(ex, ey)
+        ez = cross(ex, ey)
         X = dist / 2.0  # equal radii: X = (r0^2 - r1^2 + dist^2) / (2 dist)
         Y = (i_**2 + j_**2) / (2.0 * j_) - i_ * X / j_  # Y = (r0^2 - r2^2 + i^2 + j^2)/(2 j) - i X / j
         Z2 = Lf**2 - X**2 - Y**2

@@ -24,13 +24,14 @@ from shadow.errors import expect_finite, expect_shape
 Array = NDArray[np.float64]
 
 _SMALL_ANGLE_RAD = 1e-6  # below this the series forms of sin(x)/x etc. are used
+_NEXT = np.array([1, 2, 0])  # k + 1 mod 3
+_AFTER = np.array([2, 0, 1])  # k + 2 mod 3
 
 
 def cross(a: Array, b: Array) -> Array:
     """``a x b`` over the last axis (length 3), broadcasting; a lighter ``np.cross`` for small batches."""
-    a0, a1, a2 = a[..., 0], a[..., 1], a[..., 2]
-    b0, b1, b2 = b[..., 0], b[..., 1], b[..., 2]
-    return np.stack([a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0], axis=-1)
+    # component k: a_{k+1} b_{k+2} - a_{k+2} b_{k+1} (indices mod 3), four gathers instead of six slices and a stack
+    return a[..., _NEXT] * b[..., _AFTER] - a[..., _AFTER] * b[..., _NEXT]
 
 
 def skew(v: Array) -> Array:
