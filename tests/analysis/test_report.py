@@ -133,6 +133,14 @@ def chromium() -> str:
     return found
 
 
+def run_tool(name: str, *args: str) -> str:
+    """Run one of poppler's tools (Debian's poppler-utils, installed by tests/run) and return its output."""
+    found = shutil.which(name)
+    if found is None:
+        pytest.fail(f"{name} is not installed; run: apt-get update && apt-get install -y poppler-utils")
+    return subprocess.run([found, *args], check=True, capture_output=True, text=True, timeout=120).stdout
+
+
 @pytest.mark.browser
 def test_report_renders_in_headless_chromium(tmp_path: Path, rng: np.random.Generator) -> None:
     stream = delta_stream(rng, duration_s=6.0, impact_at_s=2.4)
@@ -140,14 +148,24 @@ def test_report_renders_in_headless_chromium(tmp_path: Path, rng: np.random.Gene
     recording.write_bytes(b"".join(encode_json(b) + b"\n" for b in stream.batches(ROBOT, 10)))
     page = tmp_path / "report.html"
     assert shadow_cli(["report", EXAMPLE_DELTA, str(recording), "-o", str(page), "--pdf"]) == 0
-    assert page.with_suffix(".pdf").read_bytes().startswith(b"%PDF-")
+    pdf = page.with_suffix(".pdf")
+    assert pdf.read_bytes().startswith(b"%PDF-")
+    # the PDF rasterised by poppler's pdftoppm (an outside renderer): the pages carry the caution and the plots
+    pages = int(re.search(r"Pages:\s+(\d+)", run_tool("pdfinfo", str(pdf))).group(1))  # type: ignore[union-attr]
+    assert pages >= 2
+    run_tool("pdftoppm", "-png", "-r", "40", "-f", "1", "-l", str(pages), str(pdf), str(tmp_path / "pdfpage"))
+    from PIL import Image  # matplotlib depends on pillow
+
+    rasters = [np.asarray(Image.open(f).convert("RGB"), dtype=float) for f in sorted(tmp_path.glob("pdfpage*.png"))]
+    assert len(rasters) == pages
+    assert (np.abs(rasters[0].reshape(-1, 3) - [255, 247, 230]).max(axis=1) < 8).mean() > 0.005  # caution fill
+    assert max(len(np.unique(r.reshape(-1, 3), axis=0)) for r in rasters) > 200  # drawn plots, not blank pages
     shot = tmp_path / "report.png"
     flags = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
              "--disable-component-update", "--disable-sync", "--no-first-run", "--disable-dev-shm-usage",
              f"--user-data-dir={tmp_path / 'profile'}", "--window-size=1100,3000", "--hide-scrollbars"]  # fmt: skip
     subprocess.run([chromium(), *flags, f"--screenshot={shot}", page.as_uri()], check=True, capture_output=True,
                    timeout=120)  # fmt: skip
-    from PIL import Image  # matplotlib depends on pillow
 
     image = np.asarray(Image.open(shot).convert("RGB"), dtype=float)
     assert image.shape[:2] == (3000, 1100)
