@@ -8,7 +8,9 @@ DESCRIPTION describes, recorded while it ran healthy. Efforts may come as joint-
 offline, so non-causal), fits the measurement model of :mod:`shadow.estimation.commissioning` by weighted least
 squares, prints the estimates with their confidence intervals, the per-actuator noise, the condition number and
 what the run could not see, and writes the baseline file the live tracker starts from (layout in
-docs/commissioning.md). With ``--gain-run`` (the same kind of motion with a known test mass added to the platform)
+docs/commissioning.md). When the recording carries drive temperatures that vary enough, it also identifies each
+actuator's viscous temperature coefficient (the live wear indicator's compensation) and says in words where the
+run could not show it. With ``--gain-run`` (the same kind of motion with a known test mass added to the platform)
 it also calibrates each drive's current-to-effort gain by the added-mass method.
 """
 
@@ -35,11 +37,13 @@ from shadow.estimation.commissioning import (
     GainCalibration,
     Identification,
     InsufficientDataError,
+    ViscousTemperatureFit,
     baseline_from_identification,
     calibrate_gains,
     condition_run,
     fit_sample_clock,
     identify_run,
+    identify_viscous_temperature,
     unseen_prior_std,
 )
 from shadow.ingest.wire import PlausibilityLimits, PositionUnit, SampleBatch, decode_json
@@ -77,6 +81,7 @@ class Recording:
     gripping: NDArray[np.bool_]  # (N,)
     n_messages: int
     measured: tuple[str, ...]  # the effort kinds found ("effort", "motor_current")
+    temperature_k: Array | None = None  # (N, n) drive temperatures [K], NaN in messages without them; None: none
 
 
 def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -220,6 +225,16 @@ def read_recording(path: Path, description: RobotDescription, *, robot_id: str |
         ),
         n_messages=len(batches),
         measured=tuple(sorted({b.effort_kind.value for _, b in batches})),
+        temperature_k=_temperatures(batches, n),
+    )
+
+
+def _temperatures(batches: list[tuple[int, SampleBatch]], n: int) -> Array | None:
+    """(N, n) drive temperatures of the recording [K], NaN for messages without them; None if none has any."""
+    if all(b.temperature_k is None for _, b in batches):
+        return None
+    return np.concatenate(
+        [b.temperature_k if b.temperature_k is not None else np.full((b.n_samples, n), np.nan) for _, b in batches]
     )
 
 
@@ -303,7 +318,7 @@ def _settings(args: argparse.Namespace, description: RobotDescription, sample_pe
 
 def _conditioned(rec: Recording, settings: CommissioningSettings, fit_clock: bool) -> ConditionedRun:
     t = fit_sample_clock(rec.t) if fit_clock else rec.t
-    return condition_run(t, rec.q, rec.effort, rec.gripping, settings)
+    return condition_run(t, rec.q, rec.effort, rec.gripping, settings, temperature=rec.temperature_k)
 
 
 def _test_parameters(description: RobotDescription, mass_kg: float) -> Array:
@@ -349,14 +364,26 @@ def run(args: argparse.Namespace) -> int:
         nominal_friction=nominal_friction,
         nominal_work_piece_kg=getattr(description.tool, "work_piece_mass_kg", None),
     )
-    baseline = dataclasses.replace(baseline, collision_threshold=healthy_run_thresholds(description, baseline, rec))
+    temperature = identify_viscous_temperature(model, run_c, ident, settings)
+    baseline = dataclasses.replace(
+        baseline,
+        collision_threshold=healthy_run_thresholds(description, baseline, rec),
+        reference_temperature_k=(
+            None if np.all(np.isnan(temperature.reference_temperature_k)) else temperature.reference_temperature_k
+        ),
+        viscous_temperature_coefficient_per_k=(
+            temperature.coefficient_per_k if temperature.identified.any() else None
+        ),  # not identified anywhere: the field stays out (the live side falls back to the declared value)
+    )
     doc = baseline_document(description, rec, run_c, settings, ident, baseline, gains, args)
+    doc["temperature_law"] = temperature_law_document(description, temperature)
     try:
         args.output.parent.mkdir(parents=True, exist_ok=True)
         args.output.write_text(json.dumps(doc, indent=1, allow_nan=False) + "\n", encoding="utf-8")
     except OSError as exc:
         raise ConfigurationError(f"{args.output}: cannot write the baseline: {exc.strerror or exc}") from exc
     print("\n".join(report_lines(description, rec, run_c, ident, gains, args)))
+    print("\n".join(temperature_lines(description, temperature)))
     unit = "N m" if description.family == "delta" else "N"
     thresholds = ", ".join(f"{i + 1}: {v:.3g} {unit}" for i, v in enumerate(baseline.collision_threshold))  # type: ignore[arg-type]
     print(f"collision thresholds calibrated on this run: {thresholds}")
@@ -480,6 +507,81 @@ def baseline_document(
             "applied": bool(args.apply_gains),
         }
     return doc
+
+
+def _declared_coefficients(description: RobotDescription) -> Array | None:
+    """The description's declared viscous temperature coefficients (n,) [1/K], or None."""
+    f = description.friction
+    return (
+        None
+        if f is None or f.viscous_temperature_coefficient_per_k is None
+        else f.viscous_temperature_coefficient_per_k
+    )
+
+
+def _fallback_words(declared: Array | None, i: int) -> str:
+    if declared is not None:
+        return f"the description's declared {declared[i]:.3g} 1/K is used"
+    return "none is declared, so the wear indicator is not compensated for temperature (0 1/K)"
+
+
+def temperature_law_document(description: RobotDescription, fit: ViscousTemperatureFit) -> dict[str, Any]:
+    """The ``temperature_law`` record of the baseline file (docs/commissioning.md)."""
+    declared = _declared_coefficients(description)
+    rotary = description.family == "delta"
+    per_actuator = []
+    for i in range(fit.identified.shape[0]):
+        used = fit.coefficient_per_k[i] if fit.identified[i] else (0.0 if declared is None else declared[i])
+        source = "identified" if fit.identified[i] else ("declared" if declared is not None else "none")
+        per_actuator.append(
+            {
+                "actuator": i + 1,
+                "identified": bool(fit.identified[i]),
+                "coefficient_per_k": _num(fit.coefficient_per_k[i]),
+                "std_per_k": _num(fit.std_per_k[i]),
+                "ci_low": _num(fit.ci_low[i]),
+                "ci_high": _num(fit.ci_high[i]),
+                "reference_temperature_k": _num(fit.reference_temperature_k[i]),
+                "temperature_span_k": _num(fit.span_k[i]),
+                "viscous_at_reference": _num(fit.viscous_at_reference[i]),
+                "viscous_unit": "N.m.s/rad" if rotary else "N.s/m",
+                "declared_per_k": None if declared is None else float(declared[i]),
+                "used_per_k": float(used),
+                "source": source,
+            }
+        )
+    return {
+        "law": "F_v(T) = F_v(T_ref) exp(-k (T - T_ref))",
+        "method": "Gauss-Newton on the weighted least squares, T_ref the qd^2-weighted mean drive temperature",
+        "confidence": fit.confidence,
+        "iterations": fit.iterations,
+        "actuators": per_actuator,
+        "explanations": list(fit.explanations),
+    }
+
+
+def temperature_lines(description: RobotDescription, fit: ViscousTemperatureFit) -> list[str]:
+    """The report's lines on the viscous temperature law."""
+    declared = _declared_coefficients(description)
+    level = f"{100 * fit.confidence:g} %"
+    lines = ["viscous temperature coefficient, F_v(T) = F_v(T_ref) exp(-k (T - T_ref)):"]
+    explained = iter(fit.explanations)
+    no_temperature = not np.any(np.isfinite(fit.reference_temperature_k))
+    for i in range(fit.identified.shape[0]):
+        if fit.identified[i]:
+            lines.append(
+                f"  actuator {i + 1}: k = {fit.coefficient_per_k[i]:.4g} 1/K, {level} interval "
+                f"[{fit.ci_low[i]:.4g}, {fit.ci_high[i]:.4g}], about T_ref = {fit.reference_temperature_k[i]:.2f} K "
+                f"(temperature span {fit.span_k[i]:.3g} K)"
+            )
+        elif no_temperature:
+            lines.append(f"  actuator {i + 1}: not seen; {_fallback_words(declared, i)}")
+        else:
+            reason = next(explained, "").split(": ", 1)[-1]
+            lines.append(f"  actuator {i + 1}: not seen, {reason}; {_fallback_words(declared, i)}")
+    if no_temperature and fit.explanations:
+        lines.append(f"  ({fit.explanations[0]})")
+    return lines
 
 
 def report_lines(

@@ -64,11 +64,12 @@ class TemperatureLaw(enum.Enum):
 
 @dataclass(frozen=True, slots=True)
 class TemperatureModel:
-    """Temperature law of one friction component: k (n,) [1/K] about reference_temperature."""
+    """Temperature law of one friction component: k (n,) [1/K] about reference_temperature, T_ref (scalar, or
+    (n,) when each actuator's baseline friction holds at its own drive temperature)."""
 
     law: TemperatureLaw
     coefficient_per_k: Array
-    reference_temperature: float
+    reference_temperature: float | Array
 
     def compensate(self, x: Array, T: Array) -> Array:
         """x (D, n) measured at T (D, n), brought to the reference temperature by (1) or (2)."""
@@ -78,7 +79,9 @@ class TemperatureModel:
         return x / (1.0 - self.coefficient_per_k[None, :] * dT)  # x_ref = x / (1 - k (T - T_ref))      (2)
 
 
-def fit_temperature_model(x: Array, T: Array, law: TemperatureLaw, reference_temperature: float) -> TemperatureModel:
+def fit_temperature_model(
+    x: Array, T: Array, law: TemperatureLaw, reference_temperature: float | Array
+) -> TemperatureModel:
     """Identify k per actuator by least squares on baseline windows (x, T both (D, n), D >= 3)."""
     expect_shape("x", x, (None, None))
     expect_shape("T", T, x.shape)
@@ -135,7 +138,7 @@ def build_baseline(
     reference_speed: Array,
     *,
     law: TemperatureLaw = TemperatureLaw.EXPONENTIAL,
-    reference_temperature: float,
+    reference_temperature: float | Array,
     coulomb_coefficient_per_k: Array | None = None,
     viscous_coefficient_per_k: Array | None = None,
 ) -> FrictionBaseline:

@@ -10,6 +10,9 @@ P_f      : (k n, k n) covariance of theta_f [unit^2]
 sigma_v  : (n,) measurement noise standard deviation per actuator [N m | N]
 theta_p  : (p,) payload parameters for models whose payload is not a single mass (hexapod: the ten standard
            inertial parameters of tool + work piece about the platform origin); None for the delta
+T_ref    : (n,) drive temperature at which theta_f holds [K] (the commissioning run's), or None (unknown)
+k_v      : (n,) viscous temperature coefficient of ``F_v(T) = F_v(T_ref) exp(-k_v (T - T_ref))`` identified at
+           commissioning [1/K]; NaN for an actuator whose run could not show it; None: not identified at all
 """
 
 from __future__ import annotations
@@ -53,6 +56,34 @@ def _scalar(d: Mapping[str, Any], name: str) -> float:
     return v
 
 
+def _vector_or_nan(name: str, value: Any, length: int) -> Array:
+    """A vector of ``length`` numbers in which None or NaN marks "not known" (stored as NaN); no infinities."""
+    try:
+        a = np.array([np.nan if v is None else v for v in np.asarray(value, dtype=object).reshape(-1)], dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise ConfigurationError(f"{name}: not a list of numbers or nulls ({exc})") from exc
+    if np.ndim(value) != 1 or a.shape[0] != length:
+        raise ConfigurationError(f"{name}: expected {length} numbers, got shape {np.shape(value)}")
+    if np.any(np.isinf(a)):
+        raise ConfigurationError(f"{name}: holds an infinite value")
+    return a
+
+
+def _optional_vector_or_nan(d: Mapping[str, Any], name: str) -> Array | None:
+    """The field as a vector (length checked by the Baseline), or None when it is missing or null."""
+    value = d.get(name)
+    if value is None:
+        return None
+    if not isinstance(value, list | tuple):
+        raise ConfigurationError(f"{name}: not a list of numbers or nulls, got {type(value).__name__}")
+    return _vector_or_nan(name, value, len(value))
+
+
+def _list_or_none(a: Array | None) -> list[float | None] | None:
+    """JSON has no NaN: "not known" entries become null."""
+    return None if a is None else [float(v) if np.isfinite(v) else None for v in a]
+
+
 @dataclass(frozen=True, slots=True)
 class Baseline:
     """Friction parameters and their covariance, noise per actuator, tool and work-piece masses.
@@ -64,6 +95,10 @@ class Baseline:
     work_piece_mass_kg : mass of the nominal work piece when gripped [kg], >= 0
     payload_parameters : (p,) theta_p of tool (+ work piece) for multi-parameter payload models, or None
     collision_threshold : (n,) momentum-observer thresholds calibrated on the healthy run [N m | N], or None
+    reference_temperature_k : (n,) T_ref, drive temperatures at which the friction holds [K], or None (unknown;
+        NaN entries: that actuator's temperature was not recorded)
+    viscous_temperature_coefficient_per_k : (n,) k_v identified at commissioning [1/K], NaN where not identified,
+        or None (not identified; files written before it existed lack the field)
     """
 
     friction_parameters: Array
@@ -73,6 +108,8 @@ class Baseline:
     work_piece_mass_kg: float
     payload_parameters: Array | None = None
     collision_threshold: Array | None = None
+    reference_temperature_k: Array | None = None
+    viscous_temperature_coefficient_per_k: Array | None = None
 
     def __post_init__(self) -> None:
         f = _vector({"friction_parameters": self.friction_parameters}, "friction_parameters")
@@ -101,6 +138,15 @@ class Baseline:
             if np.any(~(thr > 0)):
                 raise ConfigurationError(f"collision_threshold: must be > 0, got {thr}")
             object.__setattr__(self, "collision_threshold", thr)
+        n = noise.shape[0]
+        if self.reference_temperature_k is not None:
+            t_ref = _vector_or_nan("reference_temperature_k", self.reference_temperature_k, n)
+            if np.any(t_ref[np.isfinite(t_ref)] <= 0.0):
+                raise ConfigurationError(f"reference_temperature_k: must be > 0 K (absolute), got {t_ref}")
+            object.__setattr__(self, "reference_temperature_k", t_ref)
+        if self.viscous_temperature_coefficient_per_k is not None:
+            k_v = _vector_or_nan("viscous_temperature_coefficient_per_k", self.viscous_temperature_coefficient_per_k, n)
+            object.__setattr__(self, "viscous_temperature_coefficient_per_k", k_v)
         if self.payload_parameters is not None:
             object.__setattr__(
                 self,
@@ -122,6 +168,8 @@ class Baseline:
             "work_piece_mass_kg": self.work_piece_mass_kg,
             "payload_parameters": None if self.payload_parameters is None else self.payload_parameters.tolist(),
             "collision_threshold": None if self.collision_threshold is None else self.collision_threshold.tolist(),
+            "reference_temperature_k": _list_or_none(self.reference_temperature_k),
+            "viscous_temperature_coefficient_per_k": _list_or_none(self.viscous_temperature_coefficient_per_k),
         }
 
     @classmethod
@@ -142,4 +190,6 @@ class Baseline:
             work_piece_mass_kg=_scalar(d, "work_piece_mass_kg"),
             payload_parameters=None if payload is None else _vector(d, "payload_parameters"),
             collision_threshold=None if d.get("collision_threshold") is None else _vector(d, "collision_threshold"),
+            reference_temperature_k=_optional_vector_or_nan(d, "reference_temperature_k"),
+            viscous_temperature_coefficient_per_k=_optional_vector_or_nan(d, "viscous_temperature_coefficient_per_k"),
         )

@@ -61,11 +61,34 @@ scale, the point of the added-mass method). The measured value is alone on the l
 unbiased here (the published method writes the current into the regressor and therefore needs total least squares).
 gamma_i = 1 / beta_i; its interval is the image of beta_i's interval (1/x is monotone for x > 0).
 
+Viscous temperature coefficient (lubricant viscosity falls with temperature; Reynolds' exponential law,
+O. Reynolds, Phil. Trans. R. Soc. 177, 1886, from memory)
+-----------------------------------------------------------------------------------------------------
+When the run carries drive temperatures T_k,i [K], the viscous term of actuator i becomes
+    F_v,i(T) qd = b_i exp(-k_i (T - T_ref,i)) qd,      T_ref,i = sum_k qd_k,i^2 T_k,i / sum_k qd_k,i^2
+(T_ref,i is the temperature the viscous column's information is centred on, so b_i is nearly uncorrelated with
+k_i, and the plain fit's F_v,i equals b_i to first order). The model is linear in all parameters but k_i; it is
+solved by Gauss-Newton on the same weighted least squares (e.g. Bjorck, "Numerical Methods for Least Squares
+Problems", SIAM 1996, sec. 9.2, from memory): at the current k^(m), with e_k,i = exp(-k_i^(m) dT_k,i),
+    z = H' theta + sum_i g_i c_i + v,   H' = H with the viscous column of i times e_k,i,
+    g_i = -dT_k,i e_k,i qd_k,i (row i only),   k_i^(m+1) = k_i^(m) + c_i / b_i
+(first order in the step: b exp(-(k + d) dT) = b e (1 - d dT), c = b d), repeated until |c_i / b_i| < tol.
+Weights are the main fit's 1 / sigma_i, and only entries with |qd_k,i| >= ``temperature_min_speed`` (default
+20 v_s) take part for the actuators fitted: a Stribeck hump the model does not carry biases the viscous column
+by a constant, which the logarithmic law would turn into a wrong k (on the project's simulator +9 to +29 %
+with every sample, -2 to 0 % with the fast ones).
+At convergence c_i = 0, so Var(k_i) = Var(c_i) / b_i^2 (delta method), interval k_i +- t std. Only actuators
+whose viscous friction the main fit saw, whose temperature spanned at least ``min_temperature_span_k`` and
+whose interval half-width is below ``max_temperature_halfwidth_per_k`` count as identified; the others are
+named with the reason in words. The intervals, like the others, assume white residuals (an unmodelled effect
+that follows the motion makes them too narrow).
+
 Public API
 ----------
 condition_run, fit_sample_clock              centred Savitzky-Golay conditioning; stamps onto a fitted fixed-rate clock
 identify_run -> Identification               payload, friction, noise, intervals, excitation report
 weighted_least_squares, scaled_singular_values   the solver and the excitation measure
+identify_viscous_temperature -> ViscousTemperatureFit   k_v per actuator from the run's drive temperatures
 baseline_from_identification, unseen_prior_std   the live tracker's Baseline
 calibrate_gains -> GainCalibration           drive gains with a known added mass
 
@@ -73,6 +96,7 @@ Symbols
 -------
 t (N,) [s]; q, qd, qdd (N, n); tau, z (N, n) [N m | N]; Y_p (N, n, p_m); Y_f (N, n, k n); H (N, n, p)
 theta (p,); sigma (n,) [N m | N]; kappa [-]; beta, gamma (n,) [-]
+T (N, n) drive temperatures [K]; T_ref (n,) [K]; k_v (n,) viscous temperature coefficient [1/K]
 """
 
 from __future__ import annotations
@@ -130,6 +154,12 @@ class CommissioningSettings:
     empty_column_rtol : a weighted regressor column shorter than this share of the longest one counts as empty
         (column scaling alone would blow numerical dust up to full size) [-]
     velocity_unit : label of the actuator speed unit in the explanations ("rad/s" or "m/s")
+    min_temperature_span_k : smallest range of an actuator's drive temperature over the run for its viscous
+        temperature coefficient to count as seen [K]
+    max_temperature_halfwidth_per_k : largest half-width of that coefficient's interval to count as seen [1/K]
+    temperature_iterations, temperature_tol_per_k : Gauss-Newton cap and step tolerance of the coefficient [1/K]
+    temperature_min_speed : the coefficient is fitted on samples faster than this only [rad/s | m/s]; None: 20 v_s
+        (the viscous branch of the friction curve, clear of a Stribeck hump the model does not carry)
     """
 
     smooth_velocity: float
@@ -149,8 +179,21 @@ class CommissioningSettings:
     velocity_unit: str = "rad/s"
     reported_effort: tuple[ReportedEffort, ...] | None = None
     command_period_s: Array | None = None
+    min_temperature_span_k: float = 5.0
+    max_temperature_halfwidth_per_k: float = 0.01
+    temperature_iterations: int = 20
+    temperature_tol_per_k: float = 1e-7
+    temperature_min_speed: float | None = None
 
     def __post_init__(self) -> None:
+        if not self.min_temperature_span_k > 0:
+            raise ConfigurationError(f"min_temperature_span_k: must be > 0, got {self.min_temperature_span_k}")
+        if not self.max_temperature_halfwidth_per_k > 0:
+            raise ConfigurationError(
+                f"max_temperature_halfwidth_per_k: must be > 0, got {self.max_temperature_halfwidth_per_k}"
+            )
+        if self.temperature_iterations < 1 or not self.temperature_tol_per_k > 0:
+            raise ConfigurationError("temperature_iterations, temperature_tol_per_k: must be >= 1 and > 0")
         if not self.smooth_velocity > 0:
             raise ConfigurationError(f"smooth_velocity: must be > 0, got {self.smooth_velocity}")
         if not 0.0 < self.confidence < 1.0:
@@ -170,6 +213,11 @@ class CommissioningSettings:
         if len(reported) != n_actuators:
             raise ConfigurationError(f"reported_effort: expected {n_actuators} values, got {len(reported)}")
         return reported_effort_delay_s(reported, self.current_loop_bandwidth_hz, self.command_period_s)
+
+    @property
+    def temperature_speed(self) -> float:
+        """Speed above which samples enter the viscous temperature fit [rad/s | m/s]."""
+        return 20.0 * self.smooth_velocity if self.temperature_min_speed is None else float(self.temperature_min_speed)
 
     @property
     def moving_speed(self) -> float:
@@ -196,6 +244,7 @@ class ConditionedRun:
     n_raw: int  # samples before conditioning
     n_segments: int  # stretches between gaps
     effort_motion: EffortMotion | None = None  # the motion at the efforts' instants; None: the samples themselves
+    temperature: Array | None = None  # (K, n) drive temperatures [K], NaN where not recorded; None: none recorded
 
     @property
     def n_samples(self) -> int:
@@ -299,8 +348,10 @@ def condition_run(
     effort: Array,
     gripping: BoolArray | None,
     settings: CommissioningSettings,
+    *,
+    temperature: Array | None = None,
 ) -> ConditionedRun:
-    """Centred Savitzky-Golay velocities and accelerations of a whole run; effort and tool state aligned.
+    """Centred Savitzky-Golay velocities and accelerations of a whole run; effort, tool state, temperatures aligned.
 
     The motion is also evaluated at the instants the efforts belong to (``settings.effort_delay_s``).
 
@@ -308,6 +359,7 @@ def condition_run(
     ----------
     t : (N,) [s], strictly increasing (a longer step than ``max_gap_s`` splits the run)
     q : (N, n) [rad | m];  effort : (N, n) [N m | N];  gripping : (N,) bool or None (never gripping)
+    temperature : (N, n) drive temperatures [K] (NaN where not recorded), or None
     """
     t = np.asarray(t, dtype=float)
     expect_shape("t", t, (None,))
@@ -318,15 +370,22 @@ def condition_run(
     expect_finite("effort", effort)
     grip = np.zeros(t.shape[0]) if gripping is None else np.asarray(gripping, dtype=bool).astype(float)
     expect_shape("gripping", grip, t.shape)
+    channels = {"effort": effort, "gripping": grip[:, None]}
+    if temperature is not None:
+        temp = np.asarray(temperature, dtype=float)
+        expect_shape("temperature", temp, q.shape)
+        if np.any(np.isinf(temp)):
+            raise ConfigurationError("temperature: holds an infinite value")
+        channels["temperature"] = temp
     cond = Conditioner(
         q.shape[1],
-        {"effort": q.shape[1], "gripping": 1},
+        {name: a.shape[1] for name, a in channels.items()},
         half_window=settings.half_window,
         poly_order=settings.poly_order,
         max_gap_s=settings.max_gap_s,
         effort_delay_s=settings.effort_delay_s(q.shape[1]),
     )
-    cb = cond.feed(t, q, {"effort": effort, "gripping": grip[:, None]})  # whole run at once: centred windows
+    cb = cond.feed(t, q, channels)  # whole run at once: centred windows
     return ConditionedRun(
         t=cb.t,
         q=cb.q,
@@ -338,6 +397,7 @@ def condition_run(
         n_raw=int(t.shape[0]),
         n_segments=1 + len(cb.restarts),
         effort_motion=cb.effort_motion,
+        temperature=cb.channels["temperature"] if temperature is not None else None,
     )
 
 
@@ -773,6 +833,172 @@ def _explain(involved: list[str], w: Array, names: list[str], ratio: float) -> s
     return (
         f"the run does not separate {', '.join(involved)} (the combination {combo} is {ratio:.1e} of the "
         f"best-seen direction); add motion that changes their effort patterns differently"
+    )
+
+
+# ------------------------------------------------------------------------------------------ viscous temperature
+
+
+@dataclass(frozen=True, slots=True)
+class ViscousTemperatureFit:
+    """The viscous temperature coefficient k_v per actuator from a run's drive temperatures (module docstring).
+
+    coefficient_per_k : (n,) k_v [1/K], NaN where not identified
+    std_per_k, ci_low, ci_high : (n,) its standard deviation and interval [1/K], NaN where not identified
+    reference_temperature_k : (n,) T_ref [K], the v^2-weighted mean drive temperature; NaN without temperatures
+    viscous_at_reference : (n,) b at T_ref from this fit [N m s/rad | N s/m], NaN where not identified
+    span_k : (n,) max - min of the drive temperature over the samples used [K], NaN without temperatures
+    identified : (n,) bool
+    explanations : one sentence per actuator not identified, saying why
+    iterations : Gauss-Newton iterations used
+    """
+
+    coefficient_per_k: Array
+    std_per_k: Array
+    ci_low: Array
+    ci_high: Array
+    reference_temperature_k: Array
+    viscous_at_reference: Array
+    span_k: Array
+    identified: BoolArray
+    explanations: tuple[str, ...]
+    iterations: int
+    confidence: float
+
+
+def _fixed_weight_fit(H: Array, z: Array, sigma: Array, used: int) -> _Fit:
+    """Unbounded weighted least squares with fixed weights 1 / sigma_i; ``used`` entries of (K, n) carry data (the
+    others are zero rows); covariance s^2 (A^T A)^-1, s^2 = |b - A theta|^2 / (used - p)."""
+    k_samples, n, p = H.shape
+    sol = weighted_least_squares(H, z, sigma)
+    A = (H / sigma[None, :, None]).reshape(k_samples * n, p)
+    dof = max(used - p, 1)
+    s2 = float(np.sum(sol.residual**2)) / dof
+    sv, V, d = scaled_singular_values(A)
+    s_floor = np.maximum(sv, sv[0] * 1e-9)
+    cov = s2 * (d[:, None] * V) @ np.diag(s_floor**-2) @ (d[:, None] * V).T  # s^2 D V S^-2 V^T D
+    return _Fit(sol.theta, 0.5 * (cov + cov.T), sigma, sol.residual * sigma[None, :], sol.at_bound, dof, A)
+
+
+def identify_viscous_temperature(
+    mechanism: Mechanism,
+    run: ConditionedRun,
+    ident: Identification,
+    settings: CommissioningSettings,
+) -> ViscousTemperatureFit:
+    """k_v per actuator by Gauss-Newton on the measurement model with ``b exp(-k_v (T - T_ref)) qd`` (module
+    docstring), with the parameters ``ident`` held left out as there.
+
+    Parameters
+    ----------
+    mechanism, settings : as for :func:`identify_run`
+    run : :func:`condition_run` output; its ``temperature`` (K, n) [K] is what shows k_v (None: nothing to see)
+    ident : :func:`identify_run` of the same run (payload model, held parameters, noise)
+
+    Returns
+    -------
+    ViscousTemperatureFit; actuators whose run could not show k_v are NaN there and explained in words.
+    """
+    n = int(mechanism.n_actuators)
+    nan = np.full(n, np.nan)
+    if run.temperature is None or not np.any(np.isfinite(run.temperature)):
+        why = ("the recording carries no drive temperatures, so no viscous temperature coefficient could be seen",)
+        return ViscousTemperatureFit(nan, nan, nan, nan, nan, nan, nan, np.zeros(n, dtype=bool), why, 0,
+                                     settings.confidence)  # fmt: skip
+    T_all = np.asarray(run.temperature, dtype=float)
+    expect_shape("run.temperature", T_all, (run.n_samples, n))
+    has_t = np.any(np.isfinite(T_all), axis=0)  # (n,) actuators with a recorded temperature
+    rows = np.all(np.isfinite(T_all[:, has_t]), axis=1)  # samples where every recorded temperature is there
+    z, H, names, n_payload = _regressor(mechanism, run, settings, ident.payload_mode, ident.payload_parameters)
+    keep = ~ident.held
+    z, H, T = z[rows], H[rows][:, :, keep], np.where(has_t[None, :], T_all[rows], 0.0)
+    kept = [name for name, k in zip(names, keep, strict=True) if k]
+    visc = np.array([kept.index(f"viscous_{i + 1}") if f"viscous_{i + 1}" in kept else -1 for i in range(n)])
+    idx = np.arange(n)
+    v = np.where(visc[None, :] >= 0, H[:, idx, np.maximum(visc, 0)], 0.0)  # (K', n) the viscous columns, qd
+    w = v**2
+    sw = w.sum(axis=0)
+    T_ref = np.where(has_t & (sw > 0), (w * T).sum(axis=0) / np.where(sw > 0, sw, 1.0), nan)  # sum v^2 T / sum v^2
+    T_ref = np.where(has_t & ~(sw > 0), T.mean(axis=0) if T.shape[0] else nan, T_ref)
+    span = np.where(has_t, np.ptp(T, axis=0) if T.shape[0] else nan, nan)
+    seen_v = (visc >= 0) & np.array([bool(ident.identified[names.index(f"viscous_{i + 1}")]) for i in range(n)])
+    cand = has_t & seen_v & (span >= settings.min_temperature_span_k)
+    dT = np.where(cand[None, :], T - np.where(np.isfinite(T_ref), T_ref, 0.0)[None, :], 0.0)  # dT = T - T_ref
+    c_idx = np.flatnonzero(cand)
+    beta = np.zeros(n)
+    fast = np.abs(v) >= settings.temperature_speed  # (K', n) entries on the viscous branch of the friction curve
+    fast[:, ~cand] = True  # actuators without a temperature fit keep every sample
+    H = np.where(fast[:, :, None], H, 0.0)  # weight 0 for the slow entries (the Stribeck region)
+    z = np.where(fast, z, 0.0)
+    p = H.shape[2] + c_idx.size
+    used = int(fast.sum())
+    fit = None
+    iterations, converged = 0, False
+    if c_idx.size and used >= settings.min_samples_per_parameter * p:
+        for it in range(1, settings.temperature_iterations + 1):
+            iterations = it
+            e = np.exp(-beta[None, :] * dT)  # e = exp(-k^(m) dT)
+            Hs = H.copy()
+            for i in c_idx:
+                Hs[:, :, visc[i]] *= e[:, i][:, None]  # viscous column of i: b e qd
+            G = np.zeros((H.shape[0], n, c_idx.size))
+            G[:, c_idx, np.arange(c_idx.size)] = -dT[:, c_idx] * e[:, c_idx] * np.where(fast, v, 0.0)[:, c_idx]
+            fit = _fixed_weight_fit(np.concatenate([Hs, G], axis=2), z, ident.noise_std, used)  # g_i = -dT e qd
+            b = fit.theta[visc[c_idx]]
+            step = fit.theta[H.shape[2] :] / np.where(b != 0, b, np.inf)  # d = c / b
+            beta[c_idx] += step  # k^(m+1) = k^(m) + c / b
+            if np.all(np.abs(step) < settings.temperature_tol_per_k):
+                converged = True
+                break
+    std = nan.copy()
+    b_ref = nan.copy()
+    if fit is not None:
+        b = fit.theta[visc[c_idx]]
+        var_c = np.diag(fit.cov)[H.shape[2] :]
+        std[c_idx] = np.sqrt(var_c) / np.abs(np.where(b != 0, b, np.nan))  # Var(k) = Var(c) / b^2 at c = 0
+        b_ref[c_idx] = b
+    dof = max(used - p, 1)
+    t_q = float(scipy.stats.t.ppf(0.5 + 0.5 * settings.confidence, dof))  # Student t quantile
+    half = t_q * std
+    ok = cand & converged & np.isfinite(half) & (half <= settings.max_temperature_halfwidth_per_k)
+    explanations = []
+    for i in range(n):
+        a = i + 1
+        if ok[i]:
+            continue
+        if not has_t[i]:
+            explanations.append(f"actuator {a}: the recording carries no drive temperature for it")
+        elif not seen_v[i]:
+            explanations.append(f"actuator {a}: its viscous friction was not seen, so neither was its temperature law")
+        elif span[i] < settings.min_temperature_span_k:
+            explanations.append(
+                f"actuator {a}: its drive temperature spanned only {span[i]:.2g} K during the run (at least "
+                f"{settings.min_temperature_span_k:g} K needed), too little to see how its viscous friction follows it"
+            )
+        elif fit is None:
+            explanations.append(f"actuator {a}: too few samples with temperatures to fit its temperature law")
+        elif not converged:
+            explanations.append(
+                f"actuator {a}: the temperature law's fit did not settle in {iterations} Gauss-Newton iterations"
+            )
+        else:
+            explanations.append(
+                f"actuator {a}: its viscous temperature coefficient came out {beta[i]:.3g} +- {half[i]:.2g} 1/K, "
+                f"too uncertain (the interval may be at most +- {settings.max_temperature_halfwidth_per_k:g} 1/K)"
+            )
+    coef = np.where(ok, beta, np.nan)
+    return ViscousTemperatureFit(
+        coefficient_per_k=coef,
+        std_per_k=np.where(ok, std, np.nan),
+        ci_low=np.where(ok, beta - half, np.nan),  # k_v - t std
+        ci_high=np.where(ok, beta + half, np.nan),
+        reference_temperature_k=T_ref,
+        viscous_at_reference=np.where(ok, b_ref, np.nan),
+        span_k=span,
+        identified=ok,
+        explanations=tuple(explanations),
+        iterations=iterations,
+        confidence=settings.confidence,
     )
 
 

@@ -69,6 +69,12 @@ CLOSURE_SAMPLES = 721
 DEFAULT_SMOOTH_VELOCITY_RAD_S = 0.01
 DEFAULT_SMOOTH_VELOCITY_M_S = 0.0005
 
+# Plausible range of a declared viscous temperature coefficient [1/K]: lubricant viscosity falls with temperature
+# (0 and above); 0.1 1/K would halve it every 7 K, beyond any gear oil or grease (common practice, no source).
+MAX_VISCOUS_TEMPERATURE_COEFFICIENT_PER_K = 0.1
+# Plausible drive temperatures [K] (the wire format's plausibility range, docs/wire-format.md).
+TEMPERATURE_RANGE_K = (200.0, 450.0)
+
 # Unit suffixes of this schema and their names (longest match wins when a key is split).
 SCHEMA_UNITS = {
     "m": "metres",
@@ -86,13 +92,16 @@ SCHEMA_UNITS = {
     "rad_s": "radians per second",
     "m_s": "metres per second",
     "s": "seconds",
+    "k": "kelvins",
+    "per_k": "per kelvin",
 }
 # Suffixes people write for the same quantities in other units; only used to recognise a wrong unit.
 OTHER_UNITS = (
     "mm", "cm", "um", "km", "in", "inch", "inches", "ft", "g", "lb", "lbs", "t", "deg", "degrees", "mrad",
     "g_mm2", "kg_mm2", "g_cm2", "kg_cm2", "lb_in2", "kgcm2", "kgm2", "nmm", "n_mm", "mnm", "ncm", "n_m", "kn",
     "lbf", "mnm_per_a", "nmm_per_a", "n_m_per_a", "nm_a", "khz", "rpm", "mm_per_rev", "in_per_rev", "mm_rev",
-    "mm_s2", "g0", "deg_s", "mm_s", "rad_per_s", "m_per_s", "nm_s_rad", "n_s_mm", "a", "ms", "us",
+    "mm_s2", "g0", "deg_s", "mm_s", "rad_per_s", "m_per_s", "nm_s_rad", "n_s_mm", "a", "ms", "us", "c", "degc",
+    "per_c", "per_degc",
 )  # fmt: skip
 _ALL_UNITS = sorted({*SCHEMA_UNITS, *OTHER_UNITS}, key=len, reverse=True)
 
@@ -139,6 +148,9 @@ class NominalFriction:
     viscous: Array  # (n,) F_v [N m s/rad | N s/m]
     offset: Array  # (n,) o [N m | N]
     smooth_velocity: float  # v_s [rad/s | m/s]
+    # (n,) declared k of ``F_v(T) = F_v(T_ref) exp(-k (T - T_ref))`` [1/K], or None (not declared)
+    viscous_temperature_coefficient_per_k: Array | None = None
+    viscous_reference_temperature_k: float | None = None  # T at which ``viscous`` holds [K], or None
 
     def parameters(self) -> Array:
         """theta_f (3 n,) = ``[F_c1, F_v1, o_1, F_c2, ...]``."""
@@ -521,11 +533,32 @@ def _parse_friction(
     if not top.has("friction"):
         return None
     t = top.table("friction")
+    k_key, t_key = "viscous_temperature_coefficient_per_k", "viscous_reference_temperature_k"
+    k_v = None
+    if t.has(k_key):
+        k_v = t.per_actuator(k_key, n)
+        for i, k in enumerate(k_v):
+            label = k_key if _is_number(t.raw(k_key)) else f"{k_key}[{i + 1}]"
+            if not 0.0 <= k <= MAX_VISCOUS_TEMPERATURE_COEFFICIENT_PER_K:
+                t.fail(
+                    label,
+                    f"must lie in [0, {MAX_VISCOUS_TEMPERATURE_COEFFICIENT_PER_K:g}] 1/K (viscosity falls with "
+                    f"temperature, gear oils about 0.02-0.03 1/K), got {k:g}",
+                )
+    t_ref = None
+    if t.has(t_key):
+        t_ref = t.number(t_key)
+        lo, hi = TEMPERATURE_RANGE_K
+        if not lo <= t_ref <= hi:
+            hint = " (it looks like degrees Celsius; this schema takes kelvins)" if -60.0 <= t_ref < lo else ""
+            t.fail(t_key, f"must lie in [{lo:g}, {hi:g}] K, got {t_ref:g}{hint}")
     friction = NominalFriction(
         coulomb=t.per_actuator(f"coulomb_{effort_unit}", n, non_negative=True),
         viscous=t.per_actuator(f"viscous_{viscous_unit}", n, non_negative=True),
         offset=t.per_actuator(f"offset_{effort_unit}", n, default=0.0),
         smooth_velocity=t.number(f"smooth_velocity_{velocity_unit}", positive=True, default=default_v_s),
+        viscous_temperature_coefficient_per_k=k_v,
+        viscous_reference_temperature_k=t_ref,
     )
     t.finish()
     return friction

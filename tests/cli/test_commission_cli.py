@@ -67,7 +67,9 @@ def delta_efforts(rng: np.random.Generator, n_samples: int, extra_kg: float = 0.
     return T0_S + t, q, tau + SIGMA_NM * rng.normal(size=q.shape), grip
 
 
-def write_recording(path: Path, t, q, effort, grip, *, robot: str = "kestrel-harwick-line2-p4", per_message=250):
+def write_recording(
+    path: Path, t, q, effort, grip, *, robot: str = "kestrel-harwick-line2-p4", per_message=250, temperature=None
+):
     drives = load_description(DELTA_FILE).parameters.drives
     current = current_from_effort(effort, drives)
     lines = []
@@ -82,6 +84,7 @@ def write_recording(path: Path, t, q, effort, grip, *, robot: str = "kestrel-har
             q=q[s],
             current=current[s],
             gripping=grip[s],
+            temperature_k=None if temperature is None else temperature[s],
         )
         lines.append(encode_json(batch).decode())
     path.write_text("\n".join(lines) + "\n")
@@ -356,3 +359,113 @@ def test_closed_loop_simulator_run(tmp_path: Path, capsys: pytest.CaptureFixture
     coulomb = baseline.friction_parameters[0::3]
     assert np.all((coulomb > 0.6) & (coulomb < 1.0))  # between the plant's Coulomb 0.8 and static 1.0 N m, or near
     assert np.all(baseline.noise_std > sensors.effort_noise_std)  # model mismatch adds to the sensor noise
+
+
+# ------------------------------------------------------------------------------------------ viscous temperature law
+
+
+def test_without_temperatures_the_report_says_so_and_old_baseline_files_still_load(
+    tmp_path: Path, recording: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out_file = tmp_path / "baseline.json"
+    assert run_cli(["commission", str(DELTA_FILE), str(recording), "-o", str(out_file)]) == 0
+    report = capsys.readouterr().out
+    assert "the recording carries no drive temperatures" in report
+    assert "none is declared, so the wear indicator is not compensated for temperature (0 1/K)" in report
+    baseline, doc = commission.read_baseline_file(out_file)
+    assert baseline.viscous_temperature_coefficient_per_k is None and baseline.reference_temperature_k is None
+    assert doc["temperature_law"]["actuators"][0]["source"] == "none"
+    # a file written before the temperature law existed: the fields are missing, i.e. not identified
+    for key in ("reference_temperature_k", "viscous_temperature_coefficient_per_k", "temperature_law"):
+        doc.pop(key)
+    old = tmp_path / "old.json"
+    old.write_text(json.dumps(doc))
+    read, _ = commission.read_baseline_file(old)
+    assert read.viscous_temperature_coefficient_per_k is None and read.reference_temperature_k is None
+    assert_allclose(read.friction_parameters, baseline.friction_parameters, rtol=0)
+    bad = dict(doc, viscous_temperature_coefficient_per_k=[0.02, 0.03])
+    old.write_text(json.dumps(bad))
+    with pytest.raises(ShadowError, match="viscous_temperature_coefficient_per_k: expected 3 numbers"):
+        commission.read_baseline_file(old)
+
+
+def test_steady_temperature_falls_back_to_the_declared_coefficient(
+    tmp_path: Path, rng: np.random.Generator, capsys: pytest.CaptureFixture[str]
+) -> None:
+    text = DELTA_FILE.read_text().replace(
+        "viscous_nm_s_per_rad = 0.15", "viscous_nm_s_per_rad = 0.15\nviscous_temperature_coefficient_per_k = 0.022"
+    )
+    described = tmp_path / "delta.toml"
+    described.write_text(text)
+    t, q, effort, grip = delta_efforts(rng, 3000)
+    steady = 305.0 + 0.2 * np.sin(t - T0_S)[:, None] * np.ones(3)  # 0.2 K span over 3 s: too little to show k
+    rec = write_recording(tmp_path / "steady.jsonl", t, q, effort, grip, temperature=steady)
+    out_file = tmp_path / "baseline.json"
+    assert run_cli(["commission", str(described), str(rec), "-o", str(out_file)]) == 0
+    report = capsys.readouterr().out
+    assert (
+        "actuator 2: not seen, its drive temperature spanned only 0.2 K during the run (at least 5 K needed)" in report
+    )
+    assert "the description's declared 0.022 1/K is used" in report
+    baseline, doc = commission.read_baseline_file(out_file)
+    assert baseline.viscous_temperature_coefficient_per_k is None  # not identified: the field stays out
+    assert baseline.reference_temperature_k is not None  # but the commissioning temperature is known
+    assert_allclose(baseline.reference_temperature_k, 305.0, atol=0.2)
+    law = doc["temperature_law"]["actuators"][1]
+    assert (law["source"], law["used_per_k"], law["identified"]) == ("declared", 0.022, False)
+
+
+@pytest.mark.slow
+def test_closed_loop_simulator_run_through_a_warm_up_shows_the_plant_viscosity_law(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # realistic data: the project's closed-loop simulator, whose viscous friction follows Reynolds' exponential law
+    # b(T) = b_ref exp(-beta (T - T_ref)) with beta = 0.025 1/K (simulators/effects.py, DemoEffects). The same
+    # pick-and-place program is recorded four times, 20 minutes apart, at drive temperatures 25, 33, 41, 49 degC
+    # (a commissioning run repeated while the drives warm).
+    from simulators.plant import MassUpdate
+    from simulators.run import DemoEffects, delta_reference, demo_loop, run_closed_loop
+    from simulators.trajectories import delta_pick_place
+
+    rng = np.random.default_rng(11)
+    desc = load_description(DELTA_FILE)
+    effects = DemoEffects()
+    plant, controller, sensors = demo_loop(
+        desc, effects=effects, internal_step_s=DT_S, mass_update=MassUpdate.EVERY_STEP
+    )
+    path = delta_pick_place(
+        rng, 8, centre_m=desc.home_position_m + np.array([-0.15, 0.0, 0.0]), tool_mass_kg=0.35,
+        workpiece_mass_mean_kg=0.25, workpiece_mass_std_kg=0.0,
+    ).path  # fmt: skip
+    t = np.arange(int(path.end_s / DT_S)) * DT_S
+    reference, _ = delta_reference(plant.mechanism, [path] * 4, t)
+    temps_c = np.array([25.0, 33.0, 41.0, 49.0])
+    rec = run_closed_loop(
+        plant, controller, sensors, reference, rng, sample_step_s=DT_S, substeps=1,
+        ambient_c=temps_c, initial_temperature_c=np.repeat(temps_c[:, None], 3, axis=1),
+    )  # fmt: skip
+    lines = []
+    for w in range(4):
+        for s in np.array_split(np.arange(t.size), t.size // 250):
+            batch = SampleBatch(
+                robot_id=desc.name, seq=len(lines), position_unit=PositionUnit.RAD,
+                effort_kind=MeasuredQuantity.MOTOR_CURRENT, t=T0_S + 1200.0 * w + rec.stamp_s[w, s], q=rec.q[w, s],
+                current=rec.effort[w, s], gripping=rec.tool[w, s], temperature_k=rec.temperature_c[w, s] + 273.15,
+            )  # fmt: skip
+            lines.append(encode_json(batch).decode())
+    recording = tmp_path / "warm-up.jsonl"
+    recording.write_text("\n".join(lines) + "\n")
+    out_file = tmp_path / "warm-up.json"
+    assert run_cli(["commission", str(DELTA_FILE), str(recording), "-o", str(out_file), "--fit-clock"]) == 0
+    report = capsys.readouterr().out
+    baseline, doc = commission.read_baseline_file(out_file)
+    k = baseline.viscous_temperature_coefficient_per_k
+    assert k is not None and baseline.reference_temperature_k is not None
+    beta = effects.viscosity_temperature_coefficient_per_k
+    sys.stderr.write(f"simulator warm-up: k {np.round(k, 5)} 1/K (plant {beta})\n")  # for the record (pytest -s)
+    # measured: 0.02478, 0.02497, 0.02444 1/K (-0.9 %, -0.1 %, -2.3 %), each 95 % interval covering 0.025
+    assert_allclose(k, beta, rtol=0.05)
+    law = doc["temperature_law"]["actuators"]
+    assert all(a["ci_low"] < a["coefficient_per_k"] < a["ci_high"] and a["source"] == "identified" for a in law)
+    assert_allclose(baseline.reference_temperature_k, 273.15 + 37.0, atol=1.0)  # the run's qd^2-weighted mean
+    assert "actuator 1: k = 0.02" in report and "temperature span 24 K" in report

@@ -343,3 +343,52 @@ def test_hexapod_home_conditioning_limit() -> None:
     # The example's inverse Jacobian at home has a condition number of about 14.5; a limit of 10 refuses it.
     with pytest.raises(DescriptionError, match=r"geometry: the legs are \(nearly\) singular at home: .* > 10"):
         parse_description(HEXAPOD, max_home_condition=10.0)
+
+
+# ------------------------------------------------------------------------------------------ viscous temperature law
+
+
+def test_viscous_temperature_coefficient_is_optional_and_per_actuator() -> None:
+    d = parse_description(DELTA)
+    assert d.friction is not None and d.friction.viscous_temperature_coefficient_per_k is None
+    assert d.friction.viscous_reference_temperature_k is None
+    text = edit(
+        DELTA,
+        "viscous_nm_s_per_rad = 0.15",
+        "viscous_nm_s_per_rad = 0.15\nviscous_temperature_coefficient_per_k = [0.025, 0.02, 0.03]\n"
+        "viscous_reference_temperature_k = 313.15",
+    )
+    f = parse_description(text).friction
+    assert f is not None and f.viscous_reference_temperature_k == 313.15
+    assert_allclose(f.viscous_temperature_coefficient_per_k, [0.025, 0.02, 0.03], rtol=0)  # type: ignore[arg-type]
+    one = edit(
+        DELTA,
+        "viscous_nm_s_per_rad = 0.15",
+        "viscous_nm_s_per_rad = 0.15\nviscous_temperature_coefficient_per_k = 0.02",
+    )
+    shared = parse_description(one).friction
+    assert shared is not None
+    assert_allclose(shared.viscous_temperature_coefficient_per_k, [0.02] * 3, rtol=0)  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize(
+    ("line", "message"),
+    [
+        ("viscous_temperature_coefficient_per_k = -0.01", r"friction\.viscous_temperature_coefficient_per_k: must lie "
+         r"in \[0, 0\.1\] 1/K"),
+        ("viscous_temperature_coefficient_per_k = [0.02, 0.5, 0.02]", r"viscous_temperature_coefficient_per_k\[2\]: "
+         r"must lie in \[0, 0\.1\]"),
+        ("viscous_temperature_coefficient_per_k = nan", r"viscous_temperature_coefficient_per_k: must be finite"),
+        ("viscous_temperature_coefficient_per_k = [0.02, 0.02]", r"must be a number or a list of 3 numbers"),
+        ("viscous_reference_temperature_k = 40.0", r"viscous_reference_temperature_k: must lie in \[200, 450\] K, "
+         r"got 40 \(it looks like degrees Celsius; this schema takes kelvins\)"),
+        ("viscous_reference_temperature_c = 40.0", r"friction\.viscous_reference_temperature_c: wrong unit, this "
+         r"schema takes viscous_reference_temperature_k \(kelvins\)"),
+        ("viscous_temperature_coefficient_per_c = 0.02", r"viscous_temperature_coefficient_per_c: wrong unit, this "
+         r"schema takes viscous_temperature_coefficient_per_k \(per kelvin\)"),
+    ],
+)  # fmt: skip
+def test_viscous_temperature_law_refusals(line: str, message: str) -> None:
+    text = edit(DELTA, "viscous_nm_s_per_rad = 0.15", f"viscous_nm_s_per_rad = 0.15\n{line}")
+    with pytest.raises(DescriptionError, match=message):
+        parse_description(text)
