@@ -11,19 +11,32 @@ analysis and the tests all run exactly the same code. Per batch of samples:
    innovation per actuator, NIS per degree of freedom);
 4. collisions: :class:`~shadow.detection.momentum_observer.CollisionMonitor` on the conditioned samples,
    with the friction estimated by the filter taken off the measured effort and the mass matrix at the
-   estimated payload; each event gets an evidence window of raw samples (default 1 s each side),
-   written once the stream has passed the window's end;
+   estimated payload, both from the filter's estimate before the output (not yet fitted to the samples the
+   observer looks at; the posterior while the prior is much less sure, after a pause, with a second pass on the
+   prior when that sees a contact); each event gets an evidence window of raw samples (default 1 s each side),
+   written once the stream has passed the window's end. An output with a contact in it (above threshold for
+   ``min_duration_s``, on at most ``contact_max_fraction`` of it) is not learnt from: the filter goes back to
+   its state before the output (at most ``contact_hold_outputs`` outputs in a row), so one impact is one event
+   and does not leave its force in the friction and payload estimates;
 5. payload faults (delta): the carried mass of every transfer (a stretch with the tool gripping), estimated from
    that transfer alone with the filter's tool mass and friction taken off, checked against the work piece the
-   description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance);
+   description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance
+   by more than 3 times the transfer mass's std combined with the transfer-to-transfer scatter); the observer
+   sees a wrong carried mass as an external effort over the transfer, so collisions a transfer's mass explains
+   are not left out of its weighing (only contacts are) and are folded into its payload fault;
    payload changes (delta): the mass of every single-piece transfer, and the tool's own mass weighed on every
    empty move the same way, each go to a :class:`~shadow.detection.change.MassStepWatch` (two-sided CUSUM, GLR
    for the masses before and after); a confirmed step is a ``payload_change`` event, the filter is told
    (:func:`~shadow.estimation.kalman.reset_parameter`) and later transfers are judged against the new mass;
 6. wear: every ``wear_window_s`` the window's mean Coulomb and viscous friction per actuator and its mean
-   drive temperature go to :class:`~shadow.detection.wear.WearMonitor` (temperature compensation with the
-   declared viscous coefficient about the first window's temperature, indicator against the baseline's
-   friction, Theil-Sen trend, forecast of the day the last level is crossed, level events);
+   drive temperature go to :class:`~shadow.detection.wear.WearMonitor` (indicator against the baseline's
+   friction, Theil-Sen trend, forecast of the day the last level is crossed, level events). The viscous
+   friction is brought to the temperature the baseline's friction holds at, ``b_ref = b exp(k (T - T_ref))``,
+   with k per actuator from, in this order: the setting ``viscous_temperature_coefficient_per_k`` when given (an
+   override), the coefficient identified at commissioning (the baseline), the description's declared one, else 0
+   (no compensation); T_ref is the baseline's (commissioning) drive temperature, else the description's declared
+   reference temperature (nominal baseline), else the first window's. An actuator without a temperature in a
+   window is not compensated in it;
 7. model drift: the innovation of every output goes to a :class:`~shadow.detection.modes.WelchAccumulator`
    (Hann segments of ``mode_segment_s``, 50 % overlap, at the stream's own sample period, learnt from the first
    output); every ``mode_window_s`` of stream gives a Welch PSD and the structural mode fitted to it
@@ -56,7 +69,7 @@ the rated effort.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -75,6 +88,7 @@ from shadow.detection.momentum_observer import (
     ObserverState,
     alpha_for_false_alarm_rate,
     extreme_value_thresholds,
+    find_runs,
     residual_thresholds,
 )
 from shadow.detection.wear import (
@@ -87,7 +101,7 @@ from shadow.detection.wear import (
 )
 from shadow.errors import ConfigurationError, ShadowError
 from shadow.estimation.baseline import Baseline
-from shadow.estimation.kalman import reset_parameter
+from shadow.estimation.kalman import FilterState, predict, reset_parameter
 from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
 from shadow.ingest.wire import PositionUnit, SampleBatch, encode_binary
 from shadow.robots.description import RobotDescription, build_model
@@ -112,12 +126,19 @@ class MonitorSettings:
     threshold_floor_rated_fraction: float = 0.03  # model-error floor of the collision threshold
     evidence_before_s: float = 1.0
     evidence_after_s: float = 1.0
+    # an output in which the observer saw a contact (above threshold for at least CollisionSettings.min_duration_s,
+    # on at most this share of the output's samples) is not learnt from by the estimator; never more than
+    # contact_hold_outputs outputs in a row (a lasting misfit is the model's to learn, not a contact)
+    contact_max_fraction: float = 0.25
+    contact_hold_outputs: int = 2
+    observer_prior_std_ratio: float = 3.0  # the observer takes the prior estimate while it is this sure (see below)
     health_limits: HealthLimits = field(default_factory=HealthLimits)
     min_transfer_s: float = 0.1  # shorter gripping stretches are not judged
     wear_window_s: float = 600.0  # friction is averaged over windows this long for the wear trend
     wear_levels: WearLevels = field(default_factory=WearLevels)
     wear_reference_speed: float = 1.0  # v_ref of the wear indicator [rad/s | m/s]
-    viscous_temperature_coefficient_per_k: float = 0.0  # declared k of exp(-k (T - T_ref)); 0: no compensation
+    # k of exp(-k (T - T_ref)) for every actuator [1/K], overriding the baseline's and the description's; None: theirs
+    viscous_temperature_coefficient_per_k: float | None = None
     tool_step_fraction: float = 0.05  # smallest change of the tool's own mass reported, fraction of its mass
     double_pick_ratio: float = 1.5  # carried / expected above this: two work pieces
     missed_pick_ratio: float = 0.5  # carried / expected below this: nothing carried
@@ -132,6 +153,15 @@ class MonitorSettings:
     residual_drift_settle_s: float = 10.0  # the estimator's start-up: outputs this soon after the first are not counted
 
     def __post_init__(self) -> None:
+        k_v = self.viscous_temperature_coefficient_per_k
+        if k_v is not None and not (np.isfinite(k_v) and 0.0 <= k_v <= 0.1):
+            raise ConfigurationError(f"viscous_temperature_coefficient_per_k: must lie in [0, 0.1] 1/K, got {k_v!r}")
+        if not 0.0 < self.contact_max_fraction <= 1.0:
+            raise ConfigurationError(f"contact_max_fraction: must be in (0, 1], got {self.contact_max_fraction!r}")
+        if self.contact_hold_outputs < 0:
+            raise ConfigurationError(f"contact_hold_outputs: must be >= 0, got {self.contact_hold_outputs!r}")
+        if not self.observer_prior_std_ratio >= 1.0:
+            raise ConfigurationError(f"observer_prior_std_ratio: must be >= 1, got {self.observer_prior_std_ratio!r}")
         if not 0.0 < self.mode_segment_s <= self.mode_window_s:
             raise ConfigurationError(
                 f"mode_segment_s, mode_window_s: need 0 < segment <= window, got {self.mode_segment_s!r}, "
@@ -167,6 +197,9 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
     scale = np.repeat(rated, 3) * np.tile([0.02, 0.002, 0.02], n)  # N m | N, per (rad/s | m/s), N m | N
     std = 0.5 * np.abs(theta_f) + scale
     tool = description.tool
+    t_ref = None  # the temperature the declared viscous friction holds at, when declared
+    if description.friction is not None and description.friction.viscous_reference_temperature_k is not None:
+        t_ref = np.full(n, description.friction.viscous_reference_temperature_k)
     if description.family == "delta":
         return Baseline(
             friction_parameters=theta_f,
@@ -174,6 +207,7 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
             noise_std=0.005 * rated,
             tool_mass_kg=tool.tool_mass_kg,  # type: ignore[union-attr]
             work_piece_mass_kg=tool.work_piece_mass_kg,  # type: ignore[union-attr]
+            reference_temperature_k=t_ref,
         )
     payload = tool.payload_parameters()
     return Baseline(
@@ -183,6 +217,7 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
         tool_mass_kg=float(payload[0]),
         work_piece_mass_kg=0.0,
         payload_parameters=payload,
+        reference_temperature_k=t_ref,
     )
 
 
@@ -299,6 +334,7 @@ class RobotMonitor:
         self._last_seq = 0
         self._transfer = np.zeros((0, 3 + self.n))  # open transfer per sample: t, Y^T W z, Y^T W Y, |Y_p|
         self._transfer_open = False
+        self._settled = False  # the tool mass has once been known well enough to judge transfers
         self._empty = np.zeros((0, 3 + self.n))  # open empty move (tool not gripping), same columns
         if self.delta:
             tool = description.tool
@@ -311,10 +347,12 @@ class RobotMonitor:
             self._tool_steps = MassStepWatch(MassStepSettings(min_step_kg=tool_step, spread_floor_kg=tool_step / 4))
         # wear window being filled: [window index, outputs, sum F_c (n), sum b (n), sum T (n), T samples (n)]
         self._wear_acc = np.concatenate([[-1.0, 0.0], np.zeros(4 * self.n)])
-        self._wear: WearMonitor | None = None  # built at the first complete window (its temperature is T_ref)
-        self._wear_t_ref = np.nan
+        self._wear: WearMonitor | None = None  # built at the first complete window
+        self._wear_t_ref = np.full(self.n, np.nan)  # (n,) T_ref of the compensation [K]; NaN: not known yet
         self._wear_trends: list[Any] = []
         self._x_prior = np.zeros(0)  # filter estimate before the current output (not yet pulled by it)
+        self._contact_holds = 0  # outputs in a row whose update was undone for a contact in them
+        self._last_output_s = np.array([np.nan, np.nan])  # first and last sample time of the previous output [s]
         self._std_prior = np.zeros(0)
         self._welch: WelchAccumulator | None = None  # built at the first output (its sample period)
         self._mode_reference = np.zeros((0, 2))  # first GOOD estimates: frequency [Hz], damping ratio
@@ -360,10 +398,22 @@ class RobotMonitor:
         )
         self._raw.append(t, q, effort, gripping)
         self._last_seq = batches[-1].seq
-        outputs = self.tracker.process(t, q, effort, tool_gripping=gripping, temperatures=temperature)
         results = StepResults(self.robot_id)
-        for out in outputs:
-            self._rows_for(out, results)
+        # cut at the output-period boundaries, so that each tracker call completes at most one output and the
+        # filter state before it is known (the observer's estimate, and what a contact's output is rolled back to)
+        period = np.floor(t / self.settings.tracker.output_period_s)
+        cuts = [0, *(np.flatnonzero(np.diff(period)) + 1).tolist(), t.shape[0]]
+        for a, b in zip(cuts[:-1], cuts[1:], strict=True):
+            before = self.tracker.filter.state
+            outputs = self.tracker.process(
+                t[a:b],
+                q[a:b],
+                effort[a:b],
+                tool_gripping=None if gripping is None else gripping[a:b],
+                temperatures=None if temperature is None else temperature[a:b],
+            )
+            for out in outputs:
+                self._rows_for(out, results, before if len(outputs) == 1 else None)
         self._raw.trim(float(t[-1]) - self._raw_keep_s())
         return results
 
@@ -377,8 +427,26 @@ class RobotMonitor:
             return (x[0] + x[1] * gripping)[:, None]  # tool + work piece while gripping
         return np.broadcast_to(x[: self.tracker.n_payload], (gripping.shape[0], self.tracker.n_payload))
 
-    def _rows_for(self, out: TrackerOutput, results: StepResults) -> None:
+    def _rows_for(self, out: TrackerOutput, results: StepResults, before: FilterState | None = None) -> None:
+        """Every row of one output; ``before`` is the filter state before this output's update (None: unknown)."""
         t_end = float(out.t[-1])
+        x_obs = None if before is None else self._observer_estimate(out, before)
+        self._last_output_s = np.array([out.t[0], t_end])
+        saved = (self.collisions.save(), list(self._pending_events), self._residual_log_length())
+        contact = self._collisions_for(out, x_obs)
+        if contact and x_obs is None and before is not None:
+            # a contact seen through the posterior, which it has pulled: the observer runs again over this output
+            # with the estimate from before it (less certain after a pause, but not fitted to the contact)
+            self.collisions.restore(saved[0])
+            self._pending_events = saved[1]
+            if self.residual_log is not None:
+                del self.residual_log[saved[2] :]
+            contact = self._collisions_for(out, before.x)
+        if contact and before is not None and self._contact_holds < self.settings.contact_hold_outputs:
+            out = self._hold_estimator(out, before)
+            self._contact_holds += 1
+        else:
+            self._contact_holds = 0
         for name, value, std, ok in zip(out.parameter_names, out.x, out.std, out.identifiable, strict=True):
             results.estimates.append(
                 {"time_s": t_end, "parameter": name, "value": float(value), "std": float(std), "identifiable": bool(ok)}
@@ -408,29 +476,68 @@ class RobotMonitor:
                     "detail": f"{restart.reason}: step of {restart.gap_s:.3f} s",
                 }
             )
-        self._collisions_for(out)
         if self.delta:
             # judge transfers against the estimate from before this output, so that an odd transfer has not
             # yet pulled the tool mass and friction toward itself
-            settled = self._x_prior.shape == out.x.shape and self._std_prior[0] <= self._settled_tool_std_kg()
-            self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled)
+            # settled once the tool mass has been known well; a pause in the stream widens the filter's std by its
+            # random walk, but is no evidence against the estimate, so it does not unsettle it (the tool's step watch
+            # on the empty moves catches a tool changed during the pause)
+            # (missed and double picks are judged then; the fine checks wait until the filter has settled again)
+            known = self._x_prior.shape == out.x.shape
+            fine = known and self._std_prior[0] <= self._settled_tool_std_kg()
+            self._settled = self._settled or fine
+            settled = known and self._settled
+            self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled, fine=fine)
         self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
         self._wear_for(out, t_end, results)
         self._mode_for(out, results)
-        self._residual_drift_for(out, rms, results)
+        if not contact:  # an output with a contact is explained by its collision event, not by a model that drifted
+            self._residual_drift_for(out, rms, results)
         self._release_events(t_end, results)
         self._health_for(out, rms, t_end, results)
 
-    def _collisions_for(self, out: TrackerOutput) -> None:
+    def _residual_log_length(self) -> int:
+        return 0 if self.residual_log is None else len(self.residual_log)
+
+    def _observer_estimate(self, out: TrackerOutput, before: FilterState) -> Array | None:
+        """The filter's estimate before this output, for the observer, unless this output taught the filter much more
+        than it knew (None: take the posterior): after a pause its random walk has widened the prior, and the first
+        outputs re-learn. The test: the prior std propagated to this output, ``sqrt(P_ii + q_i T)``, over the
+        posterior std, at most ``observer_prior_std_ratio`` for every parameter."""
+        t_prev = self._last_output_s[1]
+        if not np.isfinite(t_prev):
+            return None
+        span = max(float(out.t[-1]) - float(t_prev), 0.0)
+        prior_std = np.sqrt(np.diag(before.P) + self.tracker.filter.model.q_rate * span)
+        ratio = prior_std / np.maximum(out.std, 1e-300)
+        return before.x if float(np.max(ratio)) <= self.settings.observer_prior_std_ratio else None
+
+    def _hold_estimator(self, out: TrackerOutput, before: FilterState) -> TrackerOutput:
+        """Undo the update of an output with a contact in it: the filter goes back to its state before the output,
+        propagated over the output's span (``P = P + Q T``), so an impact's force is not learnt as friction or
+        payload (nor its residual as noise). The output is reported with that state, as not identifying anything."""
+        span = float(out.t[-1] - out.t[0]) + (float(np.median(np.diff(out.t))) if out.t.shape[0] > 1 else 0.0)
+        state = predict(before, self.tracker.filter.model, span)
+        self.tracker.filter.state = state
+        std = np.sqrt(np.diag(state.P))
+        return replace(out, x=state.x.copy(), std=std, identifiable=np.zeros_like(out.identifiable))
+
+    def _collisions_for(self, out: TrackerOutput, x_prior: Array | None = None) -> bool:
+        """Run the observer over the output; True when a contact shows in it (see ``contact_max_fraction``).
+
+        The friction and payload the observer takes off are ``x_prior``, the filter's estimate before this output,
+        when given: the posterior has been fitted to these very samples, and a contact pulls it (its offset and
+        Coulomb terms absorb part of the force), which would show as residual before the contact's onset."""
         n_pay = self.tracker.n_payload
-        x_f = out.x[n_pay:]
+        x = out.x if x_prior is None else x_prior
+        x_f = x[n_pay:]
         tau_f = friction_effort(
             out.qd,
             x_f,
             smooth_velocity=self.settings.tracker.smooth_velocity,
             stribeck_velocity=self.settings.tracker.stribeck_velocity,
         )
-        theta = self._theta_p(out.x, out.gripping)
+        theta = self._theta_p(x, out.gripping)
         # the mass matrix and bias at each sample's own payload (the work piece comes and goes)
         M = _per_sample_mass(self, out.q, theta) if self.delta else self.model.mass_matrix(out.q, theta[0])
         beta = _momentum_bias(self, out.q, out.qd, theta)
@@ -439,24 +546,34 @@ class RobotMonitor:
         # nobody watched, so the observer starts afresh there instead of reading the jump as a collision
         restart_at = {int(np.searchsorted(out.t, r.t_s)) for r in out.restarts}
         cuts = sorted({0, out.t.shape[0], *restart_at})
+        above = np.zeros(out.t.shape[0], dtype=bool)
         for a, b in zip(cuts[:-1], cuts[1:], strict=True):
             if a in restart_at:
                 self.collisions.observer.restore(None)
             s = slice(a, b)
             r, events = self.collisions.update(out.t[s], tau[s], M[s], beta[s], out.qd[s], out.q[s])
             self._pending_events.extend(events)
+            above[s] = np.max(np.abs(r) / self.thresholds, axis=1) > 1.0
             if self.residual_log is not None:
                 self.residual_log.append(r)
+        cs = self.collisions.settings
+        starts, ends = find_runs(out.t, above, cs.merge_gap_s)
+        long_enough = bool(np.any(out.t[ends] - out.t[starts] >= cs.min_duration_s)) if starts.size else False
+        return long_enough and float(above.mean()) <= self.settings.contact_max_fraction
 
     def _settled_tool_std_kg(self) -> float:
         """Transfers are judged once the tool mass is known this well (a quarter of the work piece's tolerance)."""
         return 0.25 * float(self.description.tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
 
-    def _transfers_for(self, out: TrackerOutput, x: Array, results: StepResults, *, judge: bool) -> None:
+    def _transfers_for(
+        self, out: TrackerOutput, x: Array, results: StepResults, *, judge: bool, fine: bool = True
+    ) -> None:
         """Follow the open transfer through this output and judge every transfer that ended in it.
 
         ``x`` is the filter estimate the transfer is judged against; until the estimator has settled
-        (``judge`` False) transfers are followed but not judged."""
+        (``judge`` False) transfers are followed but not judged; while it is not settled now (``fine`` False, e.g.
+        after a pause) only missed and double picks are judged, and neither the work piece nor the tool is weighed
+        for a change."""
         n_pay = self.tracker.n_payload
         tau_f = friction_effort(
             out.qd,
@@ -477,41 +594,48 @@ class RobotMonitor:
                 self._transfer = np.concatenate([self._transfer, terms[a:e]])
                 if e < out.t.shape[0]:  # the tool let go at sample e: the transfer is complete
                     if judge and self._transfer.shape[0]:
-                        self._judge_transfer(self._transfer, float(x[1]), results)
+                        self._judge_transfer(self._transfer, float(x[1]), results, fine=fine)
                     self._transfer = np.zeros((0, 3 + self.n))
             else:  # an empty move: on it the same terms weigh the tool alone, as a deviation from x[0]
                 self._empty = np.concatenate([self._empty, terms[a:e]])
                 if e < out.t.shape[0]:  # the tool closed at sample e
-                    if judge and self._empty.shape[0]:
+                    if judge and fine and self._empty.shape[0]:
                         self._weigh_tool(self._empty, float(x[0]), results)
                     self._empty = np.zeros((0, 3 + self.n))
             state = not state if e < out.t.shape[0] else state
             a = e
         self._transfer_open = bool(state)
 
-    def _judge_transfer(self, terms: Array, assumed_kg: float, results: StepResults) -> None:
+    def _judge_transfer(self, terms: Array, assumed_kg: float, results: StepResults, *, fine: bool = True) -> None:
         """Judge one transfer from its per-sample terms (K, 3 + n): t, Y^T W z, Y^T W Y, |Y_p| per actuator.
 
-        Samples around a collision the observer found inside the transfer are left out of the mass estimate
-        (an impact's force is not the work piece's weight). If the transfer is still a payload fault, the
-        collisions that the wrong mass alone explains are folded into it: the observer ran with the filter's
-        work-piece mass ``assumed_kg``, so a wrong mass shows there as an external effort of at most
-        ``|m - assumed| max |Y_p|`` per actuator (plus its threshold); larger ones stay collisions.
+        The observer ran with the filter's work-piece mass ``assumed_kg``, so a wrong carried mass shows there as an
+        external effort of at most ``|m - assumed| max |Y_p|`` per actuator (plus its threshold) for the whole
+        transfer: a missed or double pick is seen by the observer too. So the mass is weighed first on every sample
+        of the transfer; the collisions inside it that this mass explains (peak within 1.5 times that bound) are
+        the mass's own effect, the others are contacts, and the samples around those are left out and the mass
+        weighed again (an impact's force is not the work piece's weight). If the transfer is a payload fault, the
+        collisions its mass explains are folded into it; larger ones stay collisions.
         """
         s = self.settings
         t = terms[:, 0]
         start, end = float(t[0]), float(t[-1])
         if end - start < s.min_transfer_s:
             return
+        s_yy_all = float(terms[:, 2].sum())
+        if s_yy_all <= 0.0:
+            return
+        y_max = terms[:, 3:].max(axis=0)
         inside = [c for c in self._pending_events if c.start_time_s <= end + 0.05 and c.end_time_s >= start - 0.05]
+        m_all = float(terms[:, 1].sum()) / s_yy_all  # weighed on every sample
+        contacts = [c for c in inside if not self._explained_by_mass(c, m_all, assumed_kg, y_max, end - start)]
         keep = np.ones(t.shape[0], dtype=bool)
-        for c in inside:
+        for c in contacts:
             keep &= ~((t >= c.start_time_s - 0.02) & (t <= c.end_time_s + 0.05))
         s_yz, s_yy = float(terms[keep, 1].sum()), float(terms[keep, 2].sum())
         if s_yy <= 0.0 or keep.sum() < 0.25 * t.shape[0]:
             return  # too little of the transfer left to weigh the work piece
         count = int(keep.sum())
-        y_max = terms[:, 3:].max(axis=0)
         tool = self.description.tool
         expected = self._expected_piece_kg  # the described work piece, or the new one after a reported change
         tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
@@ -523,7 +647,7 @@ class RobotMonitor:
         )
         # one work piece, right or wrong: watch its mass; not while the tool's own mass may have changed (a heavier
         # gripper looks like a heavier work piece until the empty moves have confirmed it)
-        if s.missed_pick_ratio <= ratio <= s.double_pick_ratio and not self._tool_steps.alarmed:
+        if fine and s.missed_pick_ratio <= ratio <= s.double_pick_ratio and not self._tool_steps.alarmed:
             step = self._piece_steps.push(start, end, float(m), float(std))
             if step is not None:
                 self._report_mass_step("work_piece", step, 1, results)
@@ -533,13 +657,11 @@ class RobotMonitor:
             fault, words = "missed_pick", "the tool closed but carried nothing"
         elif ratio > s.double_pick_ratio:
             fault, words = "double_pick", "the tool carried about two work pieces"
-        elif abs(m - expected) > tolerance + 3.0 * std:
+        elif fine and abs(m - expected) > tolerance + 3.0 * self._transfer_scatter_kg(float(std)):
             fault, words = "wrong_work_piece", "the carried mass is outside the work piece's tolerance"
         else:
             return
-        explainable = np.abs(m - assumed_kg) * y_max + self.thresholds  # [N m | N]
-        inside = [c for c in self._pending_events if c.start_time_s <= end + 0.05 and c.end_time_s >= start - 0.05]
-        explained = [c for c in inside if np.all(np.abs(c.peak_residual) <= 1.5 * explainable)]
+        explained = [c for c in inside if self._explained_by_mass(c, m, assumed_kg, y_max, end - start)]
         self._pending_events = [c for c in self._pending_events if all(c is not e for e in explained)]
         results.events.append(
             {
@@ -565,6 +687,24 @@ class RobotMonitor:
                 "source_seq": self._last_seq,
             }
         )
+
+    def _transfer_scatter_kg(self, std_kg: float) -> float:
+        """Std of one transfer's mass [kg]: its least-squares std (effort noise alone) combined with the scatter the
+        work piece's step watch learnt from alike transfers (what the model leaves out: friction that moves with the
+        temperature, the unmodelled Stribeck hump), ``sqrt(std^2 + spread^2)``; the std alone while it learns."""
+        spread = self._piece_steps.spread_kg
+        return float(np.hypot(std_kg, spread)) if np.isfinite(spread) else std_kg
+
+    def _explained_by_mass(
+        self, c: CollisionEvent, m_kg: float, assumed_kg: float, y_max: Array, transfer_s: float
+    ) -> bool:
+        """A collision inside a transfer that a carried mass ``m_kg`` (instead of ``assumed_kg``) explains: its peak
+        residual within 1.5 times ``|m - assumed| max |Y_p| + threshold`` on every actuator [N m | N], or lasting at
+        least half the transfer (a wrong mass acts for the whole transfer, an impact is brief)."""
+        if c.duration_s >= 0.5 * transfer_s:
+            return True
+        explainable = np.abs(m_kg - assumed_kg) * y_max + self.thresholds
+        return bool(np.all(np.abs(c.peak_residual) <= 1.5 * explainable))
 
     def _weigh_tool(self, terms: Array, x_tool_kg: float, results: StepResults) -> None:
         """The tool's mass from one empty move alone (``x_tool + sum Y^T W z / sum Y^T W Y`` on the same terms as a
@@ -650,22 +790,41 @@ class RobotMonitor:
         acc[2 + 3 * n : 2 + 4 * n] += seen
         self._wear_acc = acc
 
-    def _build_wear(self) -> WearMonitor | None:
-        """The wear monitor against the baseline's friction at the first window's temperature (T_ref)."""
+    def viscous_temperature_coefficients(self) -> Array:
+        """k (n,) [1/K] of the wear indicator's compensation: the setting if given, else the baseline's identified
+        coefficient, else the description's declared one, else 0 (no compensation)."""
+        n = self.n
+        if self.settings.viscous_temperature_coefficient_per_k is not None:
+            return np.full(n, float(self.settings.viscous_temperature_coefficient_per_k))
+        k = np.zeros(n)
+        f = self.description.friction
+        if f is not None and f.viscous_temperature_coefficient_per_k is not None:
+            k = np.asarray(f.viscous_temperature_coefficient_per_k, dtype=float).copy()
+        identified = self.baseline.viscous_temperature_coefficient_per_k
+        if identified is not None:
+            k = np.where(np.isfinite(identified), identified, k)
+        return k
+
+    def _wear_baseline(self) -> FrictionBaseline | None:
+        """The wear indicator's baseline: the baseline's friction at T_ref (NaN entries: no compensation)."""
         n = self.n
         theta_f = self.baseline.friction_parameters.reshape(n, -1)
         v_ref = np.full(n, self.settings.wear_reference_speed)
         if np.any(theta_f[:, 0] + theta_f[:, 1] * v_ref <= 0.0):
             return None
-        k_v = np.full(n, self.settings.viscous_temperature_coefficient_per_k)
-        base = FrictionBaseline(
+        t_ref = np.where(np.isfinite(self._wear_t_ref), self._wear_t_ref, 0.0)  # unknown: T is set to it (dT = 0)
+        return FrictionBaseline(
             theta_f[:, 0].copy(),
             theta_f[:, 1].copy(),
             v_ref,
-            TemperatureModel(TemperatureLaw.EXPONENTIAL, np.zeros(n), self._wear_t_ref),
-            TemperatureModel(TemperatureLaw.EXPONENTIAL, k_v, self._wear_t_ref),
+            TemperatureModel(TemperatureLaw.EXPONENTIAL, np.zeros(n), t_ref),
+            TemperatureModel(TemperatureLaw.EXPONENTIAL, self.viscous_temperature_coefficients(), t_ref),
         )
-        return WearMonitor(base, self.settings.wear_levels)
+
+    def _build_wear(self) -> WearMonitor | None:
+        """The wear monitor against the baseline's friction at T_ref (:meth:`_wear_baseline`)."""
+        base = self._wear_baseline()
+        return None if base is None else WearMonitor(base, self.settings.wear_levels)
 
     def _close_wear_window(self, acc: Array, results: StepResults) -> None:
         n = self.n
@@ -673,13 +832,27 @@ class RobotMonitor:
         F_c = acc[2 : 2 + n] / count
         b = acc[2 + n : 2 + 2 * n] / count
         t_count = acc[2 + 3 * n : 2 + 4 * n]
-        T = np.where(t_count > 0, acc[2 + 2 * n : 2 + 3 * n] / np.maximum(t_count, 1), 0.0)
+        T = np.where(t_count > 0, acc[2 + 2 * n : 2 + 3 * n] / np.maximum(t_count, 1), np.nan)  # NaN: none seen
         day = (acc[0] + 0.5) * self.settings.wear_window_s / 86400.0  # window centre [days since the epoch]
-        if self._wear is None:
-            self._wear_t_ref = float(np.mean(T))
-            self._wear = self._build_wear()
+        learn = ~np.isfinite(self._wear_t_ref) & np.isfinite(T)
+        if self._wear is None or learn.any():
+            # T_ref: the baseline's (commissioning) temperature where known, else the first window's that has one
+            known = self.baseline.reference_temperature_k
+            first = np.where(np.isfinite(self._wear_t_ref), self._wear_t_ref, T)
+            self._wear_t_ref = first if known is None else np.where(np.isfinite(known), known, first)
             if self._wear is None:
-                return  # no baseline friction to compare with (commission the robot first)
+                self._wear = self._build_wear()
+                if self._wear is None:
+                    return  # no baseline friction to compare with (commission the robot first)
+            else:
+                base = self._wear_baseline()
+                if base is not None:
+                    self._wear.baseline = base
+        T = np.where(
+            np.isfinite(T) & np.isfinite(self._wear_t_ref),
+            T,
+            self._wear.baseline.viscous_temperature.reference_temperature,
+        )
         events, self._wear_trends = self._wear.update(np.array([day]), F_c[None], b[None], T[None])
         for e in events:
             results.events.append(
@@ -851,8 +1024,13 @@ class RobotMonitor:
             )
 
     def flush_events(self) -> StepResults:
-        """At the end of a stream: the collisions still waiting for the end of their evidence window."""
+        """At the end of a stream: the last, incomplete output period folded (its transfers judged), then the
+        collisions still waiting for the end of their evidence window."""
         results = StepResults(self.robot_id)
+        before = self.tracker.filter.state
+        outputs = self.tracker.flush()
+        for out in outputs:
+            self._rows_for(out, results, before if len(outputs) == 1 else None)
         transfer, self._transfer = self._transfer, np.zeros((0, 3 + self.n))  # no transfer will be judged now
         self._release_events(np.inf, results)
         self._transfer = transfer
@@ -971,12 +1149,15 @@ class RobotMonitor:
             state.update(self._piece_steps.save("piece_steps/"))
             state.update(self._tool_steps.save("tool_steps/"))
         state["wear/acc"] = self._wear_acc.copy()
-        state["wear/t_ref"] = np.array(self._wear_t_ref)
+        state["wear/t_ref"] = self._wear_t_ref.copy()
         state["wear/days"] = np.zeros(0) if self._wear is None else self._wear.days.copy()
         state["wear/indicator"] = np.zeros((0, self.n)) if self._wear is None else self._wear.indicator.copy()
         state["wear/ranks"] = np.zeros(self.n, dtype=np.int64) if self._wear is None else self._wear.ranks.copy()
         state["wear/built"] = np.array(self._wear is not None)
         state["x_prior"] = self._x_prior.copy()
+        state["collisions/contact_holds"] = np.array(self._contact_holds)
+        state["collisions/last_output_s"] = self._last_output_s.copy()
+        state["transfer_settled"] = np.array(self._settled)
         state["std_prior"] = self._std_prior.copy()
         state["modes/dt_s"] = np.array(np.nan if self._welch is None else self._welch.settings.dt_s)
         if self._welch is not None:
@@ -1023,7 +1204,8 @@ class RobotMonitor:
             self._piece_steps.restore(state, "piece_steps/")
             self._tool_steps.restore(state, "tool_steps/")
         self._wear_acc = np.asarray(state["wear/acc"], dtype=float).copy()
-        self._wear_t_ref = float(state["wear/t_ref"])
+        # checkpoints written before per-actuator reference temperatures hold one number (its NaN: not known)
+        self._wear_t_ref = np.broadcast_to(np.asarray(state["wear/t_ref"], dtype=float), (self.n,)).copy()
         self._wear, self._wear_trends = None, []
         if bool(state["wear/built"]):
             self._wear = self._build_wear()
@@ -1037,6 +1219,9 @@ class RobotMonitor:
                         self._wear.days[tail], self._wear.indicator[tail], limit=self._wear.limit
                     )
         self._x_prior = np.asarray(state["x_prior"], dtype=float).copy()
+        self._contact_holds = int(state.get("collisions/contact_holds", 0))
+        self._last_output_s = np.asarray(state.get("collisions/last_output_s", [np.nan, np.nan]), dtype=float).copy()
+        self._settled = bool(state.get("transfer_settled", False))
         self._std_prior = np.asarray(state["std_prior"], dtype=float).copy()
         # checkpoints written before the drift watches existed lack these keys: they start afresh
         dt_s = float(state.get("modes/dt_s", np.nan))

@@ -68,7 +68,15 @@ def test_a_tiny_scoreboard_run_produces_every_row(tmp_path, capsys) -> None:
     printed = capsys.readouterr().out
     text = out.read_text(encoding="utf-8")
     rows = [line for line in text.splitlines() if line.startswith("| ") and "---" not in line]
-    assert len(rows) == 1 + 8  # header and the eight scenario rows
-    for needle in ("false alarms", "impacts of 5 %", "impacts of 15 %", "missed and double", "tool mass", "30 %"):
+    assert len(rows) == 1 + 9  # header and the nine scenario rows
+    for needle in (
+        "false alarms",
+        "impacts of 5 %",
+        "impacts of 15 %",
+        "missed and double",
+        "tool mass",
+        "pseudo-true",
+        "30 %",
+    ):
         assert needle in text and needle in printed
     assert "collision thresholds" in printed
