@@ -5,6 +5,10 @@ computed efforts for a stretch of the run, with the usual error measures); paylo
 with +-2 std bands; every event with its evidence and the estimated contact force and pose; what was not
 monitored and which lines were skipped.
 
+The page is built from the bounded digest of the run (:mod:`shadow.analysis.digest`): trends from min-max
+envelopes, the validation from one of a few raw stretches kept spread over the run, so its size and the memory
+it needs do not grow with the recording's length.
+
 Validation (symbols as in :mod:`shadow.robots.mechanism`): over a stretch of the run the positions are
 differentiated with the centred Savitzky-Golay conditioner (:class:`shadow.estimation.conditioning.Conditioner`)
 and the efforts computed with the final estimates theta = (theta_p, theta_f):
@@ -42,17 +46,18 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from shadow.analysis import Analysis, FinalEstimate, estimate_series
+from shadow.analysis import DEFAULT_STRETCH_S, Analysis, FinalEstimate, estimate_series
 from shadow.api.schemas import ADVISORY_NOTICE
 from shadow.errors import ConfigurationError, ShadowError
 from shadow.estimation.conditioning import Conditioner, regressor_at_efforts
-from shadow.ingest.wire import decode_binary
+from shadow.ingest.wire import SampleBatch, decode_binary
 from shadow.monitoring import RobotMonitor
 from shadow.robots.drives import effort_from_current
 from shadow.robots.friction import friction_effort
 
 __all__ = [
     "COLOURS",
+    "DEFAULT_STRETCH_S",
     "DASHES",
     "Validation",
     "build_report",
@@ -68,7 +73,6 @@ COLOURS = ("#124e8c", "#c2410c", "#0f766e", "#7c3aed", "#8a5a00", "#be185d", "#3
 DASHES: tuple[tuple[float, ...], ...] = ((), (7, 3), (2, 3), (9, 3, 2, 3), (1, 2), (12, 4, 4, 4), (5, 5), (3, 6))
 EVENT_RED = "#b91c1c"
 GREY_SPAN = (0.55, 0.55, 0.55, 0.18)
-DEFAULT_STRETCH_S = 4.0
 DPI = 96
 ZOOM_BEFORE_MS = 60.0  # close-up of an event's evidence: this long before its start
 ZOOM_AFTER_MS = 120.0  # and this long after its end
@@ -108,10 +112,9 @@ def validation_measures(measured: Array, computed: Array) -> tuple[Array, Array,
     return rms, nrms, r
 
 
-def _raw_arrays(monitor: RobotMonitor, analysis: Analysis) -> tuple[Array, Array, Array, Array]:
-    """(t, q, effort, gripping) of the whole recording; currents converted with the nominal drive gains."""
+def _raw_arrays(monitor: RobotMonitor, batches: list[SampleBatch]) -> tuple[Array, Array, Array, Array]:
+    """(t, q, effort, gripping) of consecutive batches; currents converted with the nominal drive gains."""
     drives = monitor.description.parameters.drives
-    batches = analysis.recording.batches
     t = np.concatenate([b.t for b in batches])
     q = np.concatenate([b.q for b in batches])
     effort = np.concatenate(
@@ -123,34 +126,45 @@ def _raw_arrays(monitor: RobotMonitor, analysis: Analysis) -> tuple[Array, Array
     return t, q, effort, grip
 
 
-def _quiet_start(first_s: float, last_s: float, stretch_s: float, events: list[dict[str, Any]]) -> float:
-    """Start of the stretch: as central as possible in [first_s, last_s], clear of every event if it can be."""
-    latest = max(first_s, last_s - stretch_s)
-    candidates = np.linspace(first_s, latest, 41)
-    mid = 0.5 * (first_s + latest)
-    candidates = candidates[np.argsort(np.abs(candidates - mid), kind="stable")]
-    margin_s = 0.1
-    for c in candidates:
-        if all(e["end_s"] + margin_s < c or e["start_s"] - margin_s > c + stretch_s for e in events):
-            return float(c)
-    return float(mid)
+def _clear_of_events(start_s: float, end_s: float, events: list[dict[str, Any]], margin_s: float = 0.1) -> bool:
+    return all(e["end_s"] + margin_s < start_s or e["start_s"] - margin_s > end_s for e in events)
 
 
 def validation_stretch(
     monitor: RobotMonitor, analysis: Analysis, finals: list[FinalEstimate], *, stretch_s: float = DEFAULT_STRETCH_S
 ) -> Validation | None:
-    """Measured vs computed efforts over ``stretch_s`` of the longest stretch without gaps, clear of events."""
+    """Measured vs computed efforts over up to ``stretch_s`` of one of the kept validation windows.
+
+    The analysis keeps a bounded set of windows spread over the run (:class:`shadow.analysis.digest.WindowSet`,
+    each ``analysis.results.stretch_s`` long); of each, the longest part without a gap counts. The stretch is
+    taken from the part clear of every event, as long as the stretch, and nearest the middle of the run, in
+    that order of preference. ``stretch_s`` longer than the kept windows is cut to their length.
+    """
     tracker = monitor.settings.tracker
-    t, q, effort, grip = _raw_arrays(monitor, analysis)
-    breaks = np.flatnonzero(np.diff(t) > tracker.max_gap_s) + 1
-    bounds = np.concatenate([[0], breaks, [t.shape[0]]])
-    k = int(np.argmax(np.diff(bounds)))
-    a, b = int(bounds[k]), int(bounds[k + 1])
-    if b - a < 2 * tracker.half_window + 2:
+    rec = analysis.recording
+    mid_s = 0.5 * (rec.start_s + rec.end_s)
+    length_s = min(stretch_s, analysis.results.stretch_s)
+    best: tuple[tuple[bool, bool, float], int, int, tuple[Array, Array, Array, Array]] | None = None
+    for window in analysis.results.windows.all():
+        arrays = _raw_arrays(monitor, window.batches)
+        t = arrays[0]
+        breaks = np.flatnonzero(np.diff(t) > tracker.max_gap_s) + 1
+        bounds = np.concatenate([[0], breaks, [t.shape[0]]])
+        k = int(np.argmax(np.diff(bounds)))
+        a, b = int(bounds[k]), int(bounds[k + 1])
+        if b - a < 2 * tracker.half_window + 2:
+            continue
+        b = min(b, a + int(np.searchsorted(t[a:b], t[a] + length_s)))
+        key = (
+            not _clear_of_events(float(t[a]), float(t[b - 1]), analysis.events),
+            float(t[b - 1] - t[a]) < 0.99 * length_s - 2 * tracker.max_gap_s,
+            abs(0.5 * (t[a] + t[b - 1]) - mid_s),
+        )
+        if best is None or key < best[0]:
+            best = (key, a, b, arrays)
+    if best is None:
         return None
-    start_s = _quiet_start(t[a], t[b - 1], stretch_s, analysis.events)
-    lo = max(a, int(np.searchsorted(t, start_s)))
-    hi = min(b, int(np.searchsorted(t, start_s + stretch_s)))
+    _, lo, hi, (t, q, effort, grip) = best
     n = monitor.n
     cond = Conditioner(
         n,
@@ -345,21 +359,21 @@ def _pose(monitor: RobotMonitor, q: list[float]) -> str:
 
 
 def _health_section(analysis: Analysis) -> str:
-    health = analysis.results.health
-    if not health:
+    digest = analysis.results
+    latest = digest.health
+    if not latest:
         return "<p>No health assessment: the recording is shorter than one output period.</p>"
-    last_t = health[-1]["time_s"]
-    latest = [h for h in health if h["time_s"] == last_t]
-    robot_rows = [h for h in health if h["scope"] == "robot"]
-    shares = {s: sum(h["state"] == s for h in robot_rows) / len(robot_rows) for s in ("steady", "watch", "act")}
+    last_t = latest[-1]["time_s"]
+    n_robot = sum(digest.robot_states.values())
     parts = [f"<p>At the end ({_e(_iso(last_t))}):</p>"]
     rows = [[h["scope"], h["state"], "; ".join(h["reasons"]) or "-"] for h in latest]
     parts.append(_table(["scope", "state", "reasons"], rows))
-    parts.append(
-        '<p class="muted">Robot state over the run: '
-        + ", ".join(f"{k} {100 * v:.0f} %" for k, v in shares.items())
-        + f" of {len(robot_rows)} assessments.</p>"
-    )
+    if n_robot:
+        parts.append(
+            '<p class="muted">Robot state over the run: '
+            + ", ".join(f"{k} {100 * digest.robot_states[k] / n_robot:.0f} %" for k in ("steady", "watch", "act"))
+            + f" of {n_robot} assessments.</p>"
+        )
     return "".join(parts)
 
 
@@ -404,7 +418,7 @@ def build_report(
             ],
         ),  # fmt: skip
         f'<p class="muted">Analysed by the live monitor\'s code in {analysis.elapsed_s:.2f} s '
-        f"({analysis.samples_per_s:,.0f} samples/s); {len(rec.skipped)} "
+        f"({analysis.samples_per_s:,.0f} samples/s); {rec.skipped_total} "
         f"{'stored messages' if rec.layout == 'store' else 'lines'} skipped; "
         f"{len(analysis.events)} events.</p>",
         "<h2 id=health>Health</h2>",
@@ -506,6 +520,12 @@ def build_report(
                 ],  # fmt: skip
             )
         )
+        digest = analysis.results
+        if digest.unmonitored_count > len(gaps):
+            out.append(
+                f"<p>{digest.unmonitored_count} stretches not monitored, {digest.unmonitored_s:.3f} s in all; "
+                f"the first {len(gaps)} are listed.</p>"
+            )
     else:
         out.append("<p>The whole run was monitored.</p>")
     if rec.layout == "store":
@@ -520,11 +540,16 @@ def build_report(
         else:
             out.append("<p>The store retains every message of the asked range.</p>")
     what = "stored messages" if rec.layout == "store" else "lines"
-    if rec.skipped:
+    if rec.skipped_total:
+        counts = ", ".join(f"{kind}: {k}" for kind, k in rec.skip_counts)
+        out.append(f"<p>{rec.skipped_total} {what} skipped ({_e(counts)}).</p>")
         shown = rec.skipped[:200]
         out.append(_table([shown[0].where, "reason"], [[s.line, s.reason] for s in shown]))
-        if len(rec.skipped) > len(shown):
-            out.append(f"<p>... and {len(rec.skipped) - len(shown)} more skipped {what}.</p>")
+        if rec.skipped_total > len(shown):
+            out.append(
+                f"<p>... and {rec.skipped_total - len(shown)} more skipped {what}; only the first {len(shown)} are "
+                "listed, the rest are counted by reason above.</p>"
+            )
     else:
         out.append(f"<p>No {what[:-1]} of the {'range' if rec.layout == 'store' else 'recording'} was skipped.</p>")
     out.append(f'<p class="muted">{_e(ADVISORY_NOTICE)}</p></body></html>')

@@ -22,6 +22,7 @@ import datetime as dt
 import json
 import sys
 import time
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -29,12 +30,13 @@ import numpy as np
 from sqlalchemy import make_url
 from sqlalchemy.exc import ArgumentError
 
-from shadow.analysis import DEFAULT_BLOCK_MESSAGES, Analysis, analyse
-from shadow.analysis.recording import Recording, read_recording
+from shadow.analysis import DEFAULT_BLOCK_MESSAGES, DEFAULT_STRETCH_S, Analysis, analyse, analyse_stream
+from shadow.analysis.recording import Recording, RecordingReader
 from shadow.analysis.stored import gap_rows, parse_time, read_stored_range
 from shadow.cli.serve import load_baseline
 from shadow.config import load_config
 from shadow.errors import ConfigurationError
+from shadow.ingest.wire import SampleBatch
 from shadow.monitoring import RobotMonitor, default_settings
 from shadow.robots.description import RobotDescription, load_description
 from shadow.store.database import normalise_url
@@ -145,27 +147,36 @@ def iso(t_s: float) -> str:
     return dt.datetime.fromtimestamp(t_s, tz=dt.UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
-def median_rate_hz(recording: Recording) -> float:
-    """The stream's rate from the median step between samples (gaps between windows do not count)."""
-    steps = np.concatenate([np.diff(b.t) for b in recording.batches if b.n_samples > 1] or [np.zeros(0)])
+def median_rate_hz(batches: Sequence[SampleBatch]) -> float:
+    """The stream's rate from the median step between samples within messages (gaps between them do not count).
+
+    A file is streamed, so ``shadow analyze`` takes the median over the first block the reader hands on (about
+    DEFAULT_BLOCK_SAMPLES samples); a stored range over all of it.
+    """
+    steps = np.concatenate([np.diff(b.t) for b in batches if b.n_samples > 1] or [np.zeros(0)])
     if steps.size == 0:
         raise ConfigurationError("--sample-rate-hz: the recording has no two samples in one message; give the rate")
     return float(1.0 / np.median(steps))
 
 
 def build_monitor(
-    description: RobotDescription, recording: Recording, baseline_path: Path | None, sample_rate_hz: float | None
+    description: RobotDescription,
+    robot_id: str,
+    batches: Sequence[SampleBatch],
+    baseline_path: Path | None,
+    sample_rate_hz: float | None,
 ) -> RobotMonitor:
-    """The monitor exactly as the live service builds it."""
-    rate = median_rate_hz(recording) if sample_rate_hz is None else sample_rate_hz
+    """The monitor exactly as the live service builds it (rate: given, or the median of ``batches``)."""
+    rate = median_rate_hz(batches) if sample_rate_hz is None else sample_rate_hz
     if not rate > 0:
         raise ConfigurationError(f"--sample-rate-hz: must be > 0, got {rate}")
     settings = default_settings(description, sample_rate_hz=rate)
-    return RobotMonitor(recording.robot_id, description, load_baseline(baseline_path), settings)
+    return RobotMonitor(robot_id, description, load_baseline(baseline_path), settings)
 
 
-def read_source(args: argparse.Namespace, description: RobotDescription) -> Recording:
-    """The recording file, or the stored range of ``--database``/``--config``, ``--robot``, ``--from``, ``--to``."""
+def read_source(args: argparse.Namespace, description: RobotDescription) -> Recording | RecordingReader:
+    """A reader streaming the recording file, or the whole stored range of ``--database``/``--config``,
+    ``--robot``, ``--from``, ``--to``."""
     from_store = args.database is not None or args.config is not None
     range_given = args.range_from is not None or args.range_to is not None
     if args.recording is not None:
@@ -173,7 +184,7 @@ def read_source(args: argparse.Namespace, description: RobotDescription) -> Reco
             raise ConfigurationError(
                 "give either a RECORDING file or a stored range (--database or --config with --from and --to), not both"
             )
-        return read_recording(args.recording, description, robot_id=args.robot, strict=args.strict)
+        return RecordingReader(args.recording, description, robot_id=args.robot, strict=args.strict)
     if not from_store:
         raise ConfigurationError("nothing to analyse: give a RECORDING file, or --database/--config with a range")
     missing = [o for o, v in (("--robot", args.robot), ("--from", args.range_from), ("--to", args.range_to)) if not v]
@@ -218,20 +229,34 @@ def open_store_for_reading(url: str) -> SqlStore:
 
 
 def run_analysis(args: argparse.Namespace) -> tuple[RobotDescription, RobotMonitor, Analysis]:
-    """Read, build and analyse, with the progress bar if wanted (shared with ``shadow report``)."""
+    """Read, build and analyse, with the progress bar if wanted (shared with ``shadow report``).
+
+    A recording file is streamed block by block (memory bounded whatever its length); a stored range is read whole.
+    """
     if args.block_messages < 1:
         raise ConfigurationError(f"--block-messages: must be >= 1, got {args.block_messages}")
+    stretch_s = getattr(args, "stretch_s", DEFAULT_STRETCH_S)
     description = load_description(args.description)
-    recording = read_source(args, description)
-    for skip in recording.skipped[:20]:
-        print(f"shadow {args.command}: skipped {recording.origin}: {skip}", file=sys.stderr)
-    if len(recording.skipped) > 20:
-        what = "messages" if recording.layout == "store" else "lines"
-        print(f"shadow {args.command}: ... {len(recording.skipped) - 20} more {what} skipped", file=sys.stderr)
-    monitor = build_monitor(description, recording, args.baseline, args.sample_rate_hz)
+    source = read_source(args, description)
     show = args.progress or sys.stderr.isatty()
     bar = ProgressBar(sys.stderr) if show else None
-    return description, monitor, analyse(recording, monitor, block_messages=args.block_messages, progress=bar)
+    if isinstance(source, RecordingReader):
+        first = [b for _, b in source.peek()]
+        robot_id = source.robot_id if source.robot_id is not None else description.name
+        monitor = build_monitor(description, robot_id, first, args.baseline, args.sample_rate_hz)
+        analysis = analyse_stream(
+            source, monitor, block_messages=args.block_messages, progress=bar, stretch_s=stretch_s
+        )
+    else:
+        monitor = build_monitor(description, source.robot_id, source.batches, args.baseline, args.sample_rate_hz)
+        analysis = analyse(source, monitor, block_messages=args.block_messages, progress=bar, stretch_s=stretch_s)
+    rec = analysis.recording
+    what = "messages" if rec.layout == "store" else "lines"
+    for skip in rec.skipped[:20]:
+        print(f"shadow {args.command}: skipped {rec.origin}: {skip}", file=sys.stderr)
+    if rec.skipped_total > 20:
+        print(f"shadow {args.command}: ... {rec.skipped_total - 20} more {what} skipped", file=sys.stderr)
+    return description, monitor, analysis
 
 
 def force_of(event: dict[str, Any]) -> tuple[str, list[float]]:
@@ -248,16 +273,20 @@ def summary_lines(description: RobotDescription, analysis: Analysis) -> list[str
     rec = analysis.recording
     delta = description.family == "delta"
     lines = [
-        f"{rec.robot_id} ({description.family}, {description.name}): {len(rec.batches)} messages, "
+        f"{rec.robot_id} ({description.family}, {description.name}): {rec.n_messages} messages, "
         f"{analysis.n_samples} samples over {rec.duration_s:.3f} s from {iso(rec.start_s)}",
         f"analysed in {analysis.elapsed_s:.2f} s: {analysis.samples_per_s:,.0f} samples/s "
         f"({rec.duration_s / analysis.elapsed_s if analysis.elapsed_s > 0 else float('inf'):.1f} x real time)",
     ]
     if rec.layout == "store":
         lines.insert(1, f"source: {rec.origin}")
-    if rec.skipped:
+    if rec.skipped_total:
         what = "messages" if rec.layout == "store" else "lines"
-        lines.append(f"skipped {what}: {len(rec.skipped)} (listed on stderr)")
+        counts = ", ".join(f"{kind} {k}" for kind, k in rec.skip_counts)
+        listed = "listed on stderr" if rec.skipped_total <= 20 else "the first 20 listed on stderr"
+        if rec.skipped_total > len(rec.skipped):
+            listed += f"; only the first {len(rec.skipped)} are kept, the rest counted"
+        lines.append(f"skipped {what}: {rec.skipped_total} ({listed}; by reason: {counts})")
     if rec.gaps:
         lines.append(
             f"not retained in the range: {len(rec.gaps)} stretches, {sum(g.duration_s for g in rec.gaps):.3f} s"
@@ -268,13 +297,13 @@ def summary_lines(description: RobotDescription, analysis: Analysis) -> list[str
             lines.append(f"  ... and {len(rec.gaps) - 20} more")
     if rec.other_robots:
         lines.append(f"other robots in the file, not analysed: {', '.join(rec.other_robots)}")
-    gaps = analysis.results.unmonitored
+    digest = analysis.results
     finals = analysis.final_estimates()
     tail_s = rec.end_s - finals[-1].time_s if finals else rec.duration_s
     if tail_s > 0:
         lines.append(f"not examined: the last {tail_s:.3f} s (the monitor works in whole output periods)")
-    if gaps:
-        lines.append(f"not monitored: {len(gaps)} stretches, {sum(g['end_s'] - g['start_s'] for g in gaps):.3f} s")
+    if digest.unmonitored_count:
+        lines.append(f"not monitored: {digest.unmonitored_count} stretches, {digest.unmonitored_s:.3f} s")
     events = analysis.events
     lines.append(f"events: {len(events)}")
     for e in events:
@@ -292,9 +321,8 @@ def summary_lines(description: RobotDescription, analysis: Analysis) -> list[str
         for est in finals:
             flag = "" if est.identifiable else "  (not identifiable from this run)"
             lines.append(f"  {est.parameter:<18} {est.value:>11.5g} +- {est.std:.3g}{flag}")
-    health = [h for h in analysis.results.health if h["scope"] == "robot"]
-    if health:
-        last = health[-1]
+    last = digest.last_robot_health
+    if last is not None:
         lines.append(f"health at the end: {last['state']}")
         lines += [f"  - {r}" for r in last["reasons"]]
     lines.append("advisory only: nothing was sent to any controller")
@@ -319,7 +347,9 @@ def events_document(analysis: Analysis) -> dict[str, Any]:
         "samples": analysis.n_samples,
         "start_utc": iso(rec.start_s),
         "end_utc": iso(rec.end_s),
-        "skipped_lines": [{s.where: s.line, "reason": s.reason} for s in rec.skipped],
+        "skipped_lines": [{s.where: s.line, "reason": s.reason} for s in rec.skipped],  # the first ones
+        "skipped_total": rec.skipped_total,
+        "skipped_by_reason": dict(rec.skip_counts),
         "not_retained": gap_rows(rec.gaps),
         "events": out,
     }
