@@ -49,7 +49,8 @@ analysis and the tests all run exactly the same code. Per batch of samples:
    which give WEAK estimates at best. Per actuator, the innovation's RMS over each ``wear_window_s`` against the
    baseline's noise std: above ``residual_drift_ratio`` one ``drift`` event (calibration lost, backlash grown),
    re-armed below ``residual_drift_clear_ratio``; the first ``residual_drift_settle_s`` (the filter's start-up)
-   are not counted;
+   are not counted, and a window is not judged when it holds a contact or a payload fault (their residual is
+   theirs) or less than ``residual_drift_min_s`` of stream;
 8. health per actuator and for the robot (:mod:`shadow.detection.health`), wear indicator included.
 
 Carried mass of a transfer (weighted least squares on one scalar, the work-piece column of the regressor):
@@ -151,6 +152,8 @@ class MonitorSettings:
     residual_drift_ratio: float = 2.0  # innovation RMS over a wear window / baseline noise std above this: drift
     residual_drift_clear_ratio: float = 1.5  # below this again, the actuator's residual drift is re-armed
     residual_drift_settle_s: float = 10.0  # the estimator's start-up: outputs this soon after the first are not counted
+    # an RMS window with less monitored time than this is not judged [s]; None: 5 s, or half the window if shorter
+    residual_drift_min_s: float | None = None
 
     def __post_init__(self) -> None:
         k_v = self.viscous_temperature_coefficient_per_k
@@ -171,6 +174,11 @@ class MonitorSettings:
             raise ConfigurationError(f"mode_drift_fraction: must be in (0, 1), got {self.mode_drift_fraction!r}")
         if self.mode_reference_estimates < 1:
             raise ConfigurationError(f"mode_reference_estimates: must be >= 1, got {self.mode_reference_estimates!r}")
+        if self.residual_drift_min_s is not None and not 0.0 <= self.residual_drift_min_s <= self.wear_window_s:
+            raise ConfigurationError(
+                f"residual_drift_min_s: must be in [0, wear_window_s = {self.wear_window_s!r}], "
+                f"got {self.residual_drift_min_s!r}"
+            )
         if not self.residual_drift_settle_s >= 0.0:
             raise ConfigurationError(f"residual_drift_settle_s: must be >= 0, got {self.residual_drift_settle_s!r}")
         if not 0.0 < self.residual_drift_clear_ratio <= self.residual_drift_ratio:
@@ -360,6 +368,7 @@ class RobotMonitor:
         # residual RMS window being filled: [window index, samples, first t, last t, sum r^2 (n)]
         self._rms_acc = np.concatenate([[-1.0, 0.0, np.nan, np.nan], np.zeros(self.n)])
         self._rms_alarmed = np.zeros(self.n, dtype=bool)
+        self._rms_explained = False  # the open RMS window held a contact or a payload fault
         self._first_output_s = np.nan  # start of the monitor's first output (the estimator's start-up)
 
     # ---------------------------------------------------------------- processing
@@ -487,12 +496,14 @@ class RobotMonitor:
             fine = known and self._std_prior[0] <= self._settled_tool_std_kg()
             self._settled = self._settled or fine
             settled = known and self._settled
+            faults_before = sum(e["kind"] == "payload_fault" for e in results.events)
             self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled, fine=fine)
+            # a transfer judged faulty in this output explains its residual as the wrong mass does
+            contact = contact or sum(e["kind"] == "payload_fault" for e in results.events) > faults_before
         self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
         self._wear_for(out, t_end, results)
         self._mode_for(out, results)
-        if not contact:  # an output with a contact is explained by its collision event, not by a model that drifted
-            self._residual_drift_for(out, rms, results)
+        self._residual_drift_for(out, rms, results, explained=bool(contact))
         self._release_events(t_end, results)
         self._health_for(out, rms, t_end, results)
 
@@ -960,8 +971,12 @@ class RobotMonitor:
             }
         )
 
-    def _residual_drift_for(self, out: TrackerOutput, rms: Array, results: StepResults) -> None:
-        """Add this output's innovation to the RMS window (the wear window's grid); close it when past it."""
+    def _residual_drift_for(self, out: TrackerOutput, rms: Array, results: StepResults, *, explained: bool) -> None:
+        """Add this output's innovation to the RMS window (the wear window's grid); close it when past it.
+
+        ``explained``: the output held a contact or a payload fault; its residual is that event's, and the window
+        it falls in is not judged for drift (the events' own residual leaks into the outputs around them).
+        """
         t0, t1 = float(out.t[0]), float(out.t[-1])
         if np.isnan(self._first_output_s):
             self._first_output_s = t0
@@ -969,9 +984,17 @@ class RobotMonitor:
             return  # the filter is still converging from its prior: its innovation says little about the model
         index = float(np.floor(t1 / self.settings.wear_window_s))
         acc = self._rms_acc
+        # an event judged in this output may lie in the window before it (a transfer judged once it ended, after a
+        # pause): both windows are left unjudged
+        self._rms_explained = self._rms_explained or explained
         if acc[0] >= 0 and index != acc[0] and acc[1] > 0:
             self._close_rms_window(acc, results)
             acc = np.concatenate([[-1.0, 0.0, np.nan, np.nan], np.zeros(self.n)])
+            self._rms_explained = explained
+        if explained:
+            acc[0] = index
+            self._rms_acc = acc
+            return
         if acc[1] == 0:
             acc[2] = t0
         acc[0] = index
@@ -982,6 +1005,9 @@ class RobotMonitor:
 
     def _close_rms_window(self, acc: Array, results: StepResults) -> None:
         s = self.settings
+        min_s = min(5.0, 0.5 * s.wear_window_s) if s.residual_drift_min_s is None else s.residual_drift_min_s
+        if self._rms_explained or acc[3] - acc[2] < min_s:
+            return  # a window explained by an event, or too short to judge, says nothing about drift
         rms = np.sqrt(acc[4:] / acc[1])  # RMS of the innovation over the window [N m | N]
         noise = np.asarray(self.baseline.noise_std, dtype=float)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -1167,6 +1193,7 @@ class RobotMonitor:
         state["residual_drift/acc"] = self._rms_acc.copy()
         state["residual_drift/alarmed"] = self._rms_alarmed.copy()
         state["residual_drift/first_output_s"] = np.array(self._first_output_s)
+        state["residual_drift/explained"] = np.array(self._rms_explained)
         return state
 
     def restore_state(self, state: dict[str, np.ndarray]) -> None:
@@ -1237,6 +1264,7 @@ class RobotMonitor:
         self._rms_alarmed = np.asarray(state.get("residual_drift/alarmed", np.zeros(self.n, dtype=bool)), dtype=bool)
         self._rms_alarmed = self._rms_alarmed.copy()
         self._first_output_s = float(state.get("residual_drift/first_output_s", np.nan))
+        self._rms_explained = bool(state.get("residual_drift/explained", False))
 
 
 def _same_layout_runs(batches: list[SampleBatch]) -> list[list[SampleBatch]]:

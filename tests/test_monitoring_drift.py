@@ -144,6 +144,44 @@ def test_extra_effort_noise_is_one_drift_event_per_excursion() -> None:
         assert "actuator 2" in e["summary"] and "backlash" in e["summary"]
 
 
+def chattering(rng: np.random.Generator, spans: list[tuple[float, float]], **stream_options: object) -> SyntheticStream:
+    """A 40 s synthetic delta with white effort noise of 0.8 N m on actuator 2 inside ``spans`` [s]."""
+    stream = delta_stream(rng, duration_s=40.0, **stream_options)  # type: ignore[arg-type]
+    t = stream.t - stream.t[0]
+    chatter = np.zeros_like(stream.effort)
+    on = np.zeros(t.shape, dtype=bool)
+    for a, b in spans:
+        on |= (t >= a) & (t < b)
+    chatter[on, 1] = rng.normal(0.0, 0.8, on.sum())
+    return with_effort(stream, chatter)
+
+
+def test_a_window_holding_a_contact_is_not_judged_for_drift() -> None:
+    # the same chatter in [11, 19) s and [28, 32) s, and an impact at 29.5 s inside the second excursion: the
+    # window [28, 32) s holds a collision, whose residual is the impact's, so only [12, 16) s is a drift event
+    stream = chattering(np.random.default_rng(12), [(11.0, 19.0), (28.0, 32.0)], impact_at_s=29.5)
+    settings = dataclasses.replace(default_settings(stream.description), wear_window_s=4.0)
+    res = run(RobotMonitor(ROBOT, stream.description, None, settings), stream.batches("p4", 100))
+    collisions = [e for e in res.events if e["kind"] == "collision"]
+    assert [round(e["start_s"] - stream.t[0], 1) for e in collisions] == [29.5]
+    assert [round(e["start_s"] - stream.t[0]) for e in drift_events(res, "residual_rms")] == [12]
+    # the same stream without the impact: both excursions are events
+    calm = chattering(np.random.default_rng(12), [(11.0, 19.0), (28.0, 32.0)])
+    res = run(RobotMonitor(ROBOT, calm.description, None, settings), calm.batches("p4", 100))
+    assert [round(e["start_s"] - calm.t[0]) for e in drift_events(res, "residual_rms")] == [12, 28]
+
+
+def test_a_window_shorter_than_the_minimum_is_not_judged() -> None:
+    stream = chattering(np.random.default_rng(12), [(11.0, 19.0)])
+    # a window's stream spans 3.999 s (first to last sample of 4 s at 1 kHz)
+    for min_s, expected in [(3.5, [12]), (4.0, [])]:
+        settings = dataclasses.replace(
+            default_settings(stream.description), wear_window_s=4.0, residual_drift_min_s=min_s
+        )
+        res = run(RobotMonitor(ROBOT, stream.description, None, settings), stream.batches("p4", 100))
+        assert [round(e["start_s"] - stream.t[0]) for e in drift_events(res, "residual_rms")] == expected
+
+
 def test_restored_monitor_continues_the_drift_watches_exactly(falling_mode) -> None:
     stream, whole = falling_mode
     settings = quick_mode_settings(stream, wear_window_s=10.0)
@@ -190,6 +228,8 @@ def test_bad_drift_settings_are_refused() -> None:
         ({"mode_reference_estimates": 0}, "mode_reference_estimates"),
         ({"residual_drift_clear_ratio": 3.0}, "clear <= ratio"),
         ({"residual_drift_settle_s": -1.0}, "residual_drift_settle_s"),
+        ({"residual_drift_min_s": -1.0}, "residual_drift_min_s"),
+        ({"residual_drift_min_s": 700.0}, "residual_drift_min_s"),
     ]:
         with pytest.raises(ConfigurationError, match=match):
             MonitorSettings(tracker=tracker, **bad)  # type: ignore[arg-type]
