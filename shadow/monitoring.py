@@ -496,10 +496,10 @@ class RobotMonitor:
             fine = known and self._std_prior[0] <= self._settled_tool_std_kg()
             self._settled = self._settled or fine
             settled = known and self._settled
-            faults_before = sum(e["kind"] == "payload_fault" for e in results.events)
+            n_events = len(results.events)
             self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled, fine=fine)
             # a transfer judged faulty in this output explains its residual as the wrong mass does
-            contact = contact or sum(e["kind"] == "payload_fault" for e in results.events) > faults_before
+            contact = contact or any(e["kind"] == "payload_fault" for e in results.events[n_events:])
         self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
         self._wear_for(out, t_end, results)
         self._mode_for(out, results)

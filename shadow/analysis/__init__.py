@@ -25,7 +25,6 @@ from shadow.analysis.recording import Recording, RecordingInfo, RecordingReader
 from shadow.errors import ConfigurationError
 from shadow.ingest.wire import SampleBatch
 from shadow.monitoring import RobotMonitor
-from shadow.store.repository import StepResults
 
 __all__ = [
     "Analysis",
@@ -34,7 +33,6 @@ __all__ = [
     "analyse_stream",
     "estimate_series",
     "final_estimates",
-    "release_pending_events",
 ]
 
 DEFAULT_BLOCK_MESSAGES = 50
@@ -86,15 +84,6 @@ def final_estimates(rows: list[dict[str, Any]]) -> list[FinalEstimate]:
     ]
 
 
-def release_pending_events(monitor: RobotMonitor) -> StepResults:
-    """Rows of the events still waiting for the end of their evidence window (the recording ended first).
-
-    A live monitor keeps them until the stream passes the window's end; a recording has no more samples,
-    so they are released with the evidence recorded up to its end.
-    """
-    return monitor.flush_events()
-
-
 def _run(
     batches: Iterator[SampleBatch],
     monitor: RobotMonitor,
@@ -129,7 +118,7 @@ def _run(
         step()
     if progress is not None and shown_total != done:  # a streamed total was an estimate: end on the count
         progress(done, done, time.perf_counter() - start)
-    digest.add(release_pending_events(monitor))
+    digest.add(monitor.flush_events())  # the last output folded, events waiting for their evidence window
     return done, time.perf_counter() - start
 
 
