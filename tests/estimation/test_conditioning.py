@@ -271,7 +271,8 @@ def test_effort_motion_split_invariance(rng: np.random.Generator) -> None:
     ]
     for name in ("q", "qd", "qdd"):
         chunked = np.concatenate([getattr(p, name) for p in parts], axis=1)
-        assert_allclose(chunked, getattr(whole, name), rtol=1e-12, atol=1e-12, err_msg=name)
+        # equal up to rounding: a batch of one window sums its window in another order than a long batch does
+        assert_allclose(chunked, getattr(whole, name), rtol=1e-10, atol=1e-10, err_msg=name)
 
 
 def test_delay_outside_the_window_is_refused(rng: np.random.Generator) -> None:
