@@ -355,12 +355,17 @@ class DeltaModel:
         expect_finite("theta_p", theta)
         return float(theta[0])
 
-    def _gravity_efforts(self, kin: _Kinematics, m_L: float) -> Array:
-        """dV/dq (N, 3) [N m]: -sum_b A_b^T m_b g over arm centres, forearm centres and the platform."""
+    def _gravity_efforts(self, kin: _Kinematics, m_L: float | Array) -> Array:
+        """dV/dq (N, 3) [N m]: -sum_b A_b^T m_b g over arm centres, forearm centres and the platform.
+
+        ``m_L`` is one payload mass [kg] or one per sample (N,).
+        """
         p = self.params
         g = np.asarray(p.gravity_m_s2, dtype=float)
         arm = p.upper_arm_mass_kg * p.upper_arm_com_m / p.upper_arm_length_m + 0.5 * p.forearm_mass_kg
-        m_plat = p.platform_mass_kg + m_L + 1.5 * p.forearm_mass_kg  # platform, payload, forearm halves
+        m_plat = (
+            p.platform_mass_kg + np.asarray(m_L)[..., None] + 1.5 * p.forearm_mass_kg
+        )  # platform, payload, forearm halves
         own = -arm * np.einsum("nik,k->ni", kin.e1, g)  # -(m_a c_a / L_a + m_f / 2) e1_i . g
         return own - m_plat * np.einsum("nki,k->ni", kin.J, g)  # - m J^T g
 
@@ -453,6 +458,41 @@ class DeltaModel:
         JtJd = np.swapaxes(kin.J, 1, 2) @ rates.Jd
         Kd = (kin.e2 * qd[:, :, None]) @ kin.J + kin.e1 @ rates.Jd
         return m_x * (JtJd + np.swapaxes(JtJd, 1, 2)) + w_ep * m_f * (Kd + np.swapaxes(Kd, 1, 2))
+
+    def momentum_terms(
+        self, q: Array, qd: Array, payload_mass_kg: Array, *, max_condition: float = DEFAULT_MAX_CONDITION
+    ) -> tuple[Array, Array]:
+        """(M (N, 3, 3) [kg m^2], beta (N, 3) [N m]) at each sample's own payload mass (N,) [kg], in one pass.
+
+        What the momentum observer needs: the mass matrix of :meth:`mass_matrix` and ``beta = h - dM/dt qd``
+        (:meth:`bias_efforts`, :meth:`mass_matrix_rate`), the same terms as those methods give, sharing one
+        evaluation of the kinematics and its rates (the payload enters through ``m_x`` and gravity only).
+        """
+        q, qd = _as_batch("q", q), _as_batch("qd", qd)
+        _same_length(q, qd)
+        m_L = np.asarray(payload_mass_kg, dtype=np.float64)
+        expect_shape("payload_mass_kg", m_L, (q.shape[0],))
+        expect_finite("payload_mass_kg", m_L)
+        kin = self._kinematics(q, max_condition=max_condition)
+        rates = self._rates(kin, qd)
+        p = self.params
+        w_ee, w_ep, w_pp = _FOREARM_WEIGHTS[self.forearm_model]
+        m_f = p.forearm_mass_kg
+        m_x = (p.platform_mass_kg + 3.0 * w_pp * m_f + m_L)[:, None, None]  # (N, 1, 1)
+        Jt = np.swapaxes(kin.J, 1, 2)
+        K = kin.e1 @ kin.J
+        G2 = np.einsum("nik,nik->ni", kin.e1, kin.e1)
+        M = (self._rotor_inertia + w_ee * m_f * G2)[:, :, None] * np.eye(3)[None]
+        M = M + m_x * (Jt @ kin.J) + w_ep * m_f * (K + np.swapaxes(K, 1, 2))
+        c = np.einsum("nij,nj->ni", rates.Jd, qd)  # dJ/dt qd
+        aE0 = kin.e2 * (qd**2)[:, :, None]
+        h = m_f * np.einsum("nik,nik->ni", kin.e1, w_ee * aE0 + w_ep * c[:, None, :])
+        h = h + np.einsum("nki,nk->ni", kin.J, m_x[:, :, 0] * c + w_ep * m_f * aE0.sum(axis=1))
+        h = h + self._gravity_efforts(kin, m_L)
+        JtJd = Jt @ rates.Jd
+        Kd = (kin.e2 * qd[:, :, None]) @ kin.J + kin.e1 @ rates.Jd
+        Md = m_x * (JtJd + np.swapaxes(JtJd, 1, 2)) + w_ep * m_f * (Kd + np.swapaxes(Kd, 1, 2))
+        return M, h - np.einsum("nij,nj->ni", Md, qd)
 
     def rigid_regressor(
         self, q: Array, qd: Array, qdd: Array, *, max_condition: float = DEFAULT_MAX_CONDITION

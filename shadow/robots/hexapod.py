@@ -581,6 +581,30 @@ class HexapodModel:
         k = self._inverse_jacobian_rate(m, twist) @ jac  # K = (d J_inv / dt) J
         return mq_x - np.swapaxes(k, 1, 2) @ mq - mq @ k
 
+    def momentum_terms(self, q: Array, qd: Array, theta_p: Array) -> tuple[Array, Array]:
+        """(M (N, 6, 6) [kg], beta (N, 6) [N]) for the momentum observer, from one forward kinematics.
+
+        ``beta = h - dM/dt qd``: the terms :meth:`mass_matrix`, :meth:`bias_efforts` and
+        :meth:`mass_matrix_rate` give one by one (each solving the forward kinematics again), with the pose,
+        Jacobian and twist shared. ``h = F(q, qd, qdd = 0)``: the platform acceleration at zero leg acceleration
+        is ``-J c`` (see :meth:`platform_motion`).
+        """
+        theta_in = self._theta(theta_p)
+        theta = theta_in + self._theta_platform
+        q = _checked("q", q, (None, 6))
+        qd = _checked("qd", qd, (q.shape[0], 6))
+        p, R = self.forward_kinematics(q)
+        jac = self._checked_inverse(self._inverse_jacobian(p, R))
+        twist = _mv(jac, qd)
+        m = self._leg_motion(p, R, twist, np.zeros_like(twist))
+        mq = self._actuator_mass_matrix(jac, self._platform_mass_matrix(p, R, theta))
+        mq_x = self._actuator_mass_matrix(jac, self._platform_mass_matrix_rate(p, R, twist, theta))
+        k = self._inverse_jacobian_rate(m, twist) @ jac  # K = (d J_inv / dt) J
+        md = mq_x - np.swapaxes(k, 1, 2) @ mq - mq @ k
+        tau_known, y_p = self._platform_regressor(p, R, twist, _mv(jac, -m.qdd))  # m.qdd = c at zero accel
+        h = tau_known + y_p @ theta_in
+        return mq, h - _mv(md, qd)
+
     # ------------------------------------------------------------------ energy
 
     def kinetic_energy_from_platform(self, p: Array, R: Array, twist: Array, theta_p: Array) -> Array:

@@ -366,3 +366,21 @@ def test_miss_distance_is_metres(model: DeltaModel) -> None:
 def test_rejects_unknown_forearm_model(delta_params: DeltaParameters) -> None:
     with pytest.raises(DescriptionError, match="forearm_model"):
         DeltaModel(delta_params, forearm_model="beam")  # type: ignore[arg-type]
+
+
+def test_momentum_terms_equal_the_separate_methods_at_each_samples_payload(
+    model: DeltaModel, rng: np.random.Generator
+) -> None:
+    # one pass of the kinematics must give what mass_matrix, bias_efforts and mass_matrix_rate give one by one
+    q = rng.uniform(-0.3, 0.6, size=(40, 3))
+    qd = rng.normal(scale=2.0, size=(40, 3))
+    mass = rng.uniform(0.0, 1.5, size=40)
+    M, beta = model.momentum_terms(q, qd, mass)
+    for k in range(0, 40, 7):
+        th = mass[k : k + 1]
+        Md = model.mass_matrix_rate(q[k : k + 1], qd[k : k + 1], th)[0]
+        assert_allclose(M[k], model.mass_matrix(q[k : k + 1], th)[0], rtol=1e-13, atol=1e-13)
+        expected = model.bias_efforts(q[k : k + 1], qd[k : k + 1], th)[0] - Md @ qd[k]
+        assert_allclose(beta[k], expected, rtol=1e-12, atol=1e-12)
+    with pytest.raises(ShapeError, match="payload_mass_kg"):
+        model.momentum_terms(q, qd, mass[:5])

@@ -416,3 +416,18 @@ def test_unreachable_and_singular_messages(model: HexapodModel) -> None:
     strict = HexapodModel(model.params, max_condition=1.0)
     with pytest.raises(SingularPoseError, match="sample 0: inverse Jacobian condition number .* max_condition"):
         strict.mass_matrix(q[:1], np.zeros(10))
+
+
+def test_momentum_terms_equal_the_separate_methods(model: HexapodModel, rng: np.random.Generator) -> None:
+    # one forward kinematics must give what mass_matrix, bias_efforts and mass_matrix_rate give one by one
+    p, R = random_poses(rng, 25)
+    q = model.inverse_kinematics(p, R)
+    qd = rng.normal(size=(25, 6)) * 0.05
+    theta = random_payload(rng).standard_parameters()
+    M, beta = model.momentum_terms(q, qd, theta)
+    Md = model.mass_matrix_rate(q, qd, theta)
+    expected = model.bias_efforts(q, qd, theta) - np.einsum("nij,nj->ni", Md, qd)
+    assert_allclose(M, model.mass_matrix(q, theta), rtol=1e-12, atol=1e-12 * np.abs(M).max())
+    assert_allclose(beta, expected, rtol=1e-10, atol=1e-10 * np.abs(expected).max())
+    with pytest.raises(ShapeError, match="theta_p"):
+        model.momentum_terms(q, qd, theta[:4])
