@@ -32,7 +32,8 @@ def best_of(fn: Callable[[], object], repeats: int = 3) -> float:
     return best
 
 
-def filter_figures(rng: np.random.Generator, p: int, n: int, batch: int, n_batches: int, n_filterpy: int) -> None:
+def filter_figures(rng: np.random.Generator, p: int, n: int, batch: int, n_batches: int, n_filterpy: int) -> float:
+    """Print the batched filter's rate beside filterpy's per-sample loop; returns the latter [samples/s]."""
     model = FilterModel(q_rate=np.full(p, 1e-6), identifiability_std=np.ones(p))
     state0 = FilterState(x=np.zeros(p), P=np.eye(p), R=0.01 * np.eye(n))
     H = rng.normal(size=(n_batches, batch, n, p))
@@ -64,9 +65,15 @@ def filter_figures(rng: np.random.Generator, p: int, n: int, batch: int, n_batch
         f"filter p={p:2d} n={n} batch={batch:5d}: batched {rate_batched:12,.0f} samples/s | "
         f"filterpy per-sample {rate_filterpy:9,.0f} samples/s | ratio {rate_batched / rate_filterpy:6.1f}x"
     )
+    return rate_filterpy
 
 
-def tracker_figures(rng: np.random.Generator, duration_s: float) -> None:
+def whole_ratio(rate: float, filterpy_rate: float) -> str:
+    """The whole tracker against filterpy's per-sample predict and update alone (no conditioning, no model)."""
+    return f"{rate / filterpy_rate:5.1f}x filterpy's per-sample loop (filter alone)"
+
+
+def tracker_figures(rng: np.random.Generator, duration_s: float, filterpy_rate: float) -> None:
     desc = load_description(next(p for p in example_paths() if "delta" in p.name))
     model = build_model(desc)
     dt = 1e-3
@@ -118,11 +125,12 @@ def tracker_figures(rng: np.random.Generator, duration_s: float) -> None:
     for chunk in (100, 1000, 10000):
         rate = t.size / best_of(run(chunk), repeats=2)
         print(
-            f"tracker delta, input batches of {chunk:5d} samples: {rate:10,.0f} samples/s ({rate * dt:6.1f}x real time)"
+            f"tracker delta, input batches of {chunk:5d} samples: {rate:10,.0f} samples/s "
+            f"({rate * dt:6.1f}x real time, {whole_ratio(rate, filterpy_rate)})"
         )
 
 
-def hexapod_tracker_figures(rng: np.random.Generator, duration_s: float) -> None:
+def hexapod_tracker_figures(rng: np.random.Generator, duration_s: float, filterpy_rate: float) -> None:
     desc = load_description(next(p for p in example_paths() if "hexapod" in p.name))
     model = build_model(desc)
     theta_p = desc.tool.payload_parameters()
@@ -162,17 +170,20 @@ def hexapod_tracker_figures(rng: np.random.Generator, duration_s: float) -> None
             tracker.process(t[a0 : a0 + 1000], q[a0 : a0 + 1000], effort[a0 : a0 + 1000])
 
     rate = t.size / best_of(go, repeats=2)
-    print(f"tracker hexapod, input batches of  1000 samples: {rate:10,.0f} samples/s ({rate * dt:6.1f}x real time)")
+    print(
+        f"tracker hexapod, input batches of  1000 samples: {rate:10,.0f} samples/s ({rate * dt:6.1f}x real time, "
+        f"{whole_ratio(rate, filterpy_rate)})"
+    )
 
 
 def main() -> None:
     rng = np.random.default_rng(20261202)
     print(f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', '(unset)')}")
-    filter_figures(rng, p=11, n=3, batch=1000, n_batches=50, n_filterpy=3000)  # delta: 2 payload + 9 friction
-    filter_figures(rng, p=28, n=6, batch=1000, n_batches=20, n_filterpy=2000)  # hexapod: 10 payload + 18 friction
+    delta_fp = filter_figures(rng, p=11, n=3, batch=1000, n_batches=50, n_filterpy=3000)  # 2 payload + 9 friction
+    hexapod_fp = filter_figures(rng, p=28, n=6, batch=1000, n_batches=20, n_filterpy=2000)  # 10 payload + 18 friction
     filter_figures(rng, p=11, n=3, batch=100, n_batches=200, n_filterpy=3000)
-    tracker_figures(rng, duration_s=20.0)
-    hexapod_tracker_figures(rng, duration_s=10.0)
+    tracker_figures(rng, duration_s=20.0, filterpy_rate=delta_fp)
+    hexapod_tracker_figures(rng, duration_s=10.0, filterpy_rate=hexapod_fp)
 
 
 if __name__ == "__main__":
