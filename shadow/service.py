@@ -153,7 +153,13 @@ class ServiceStatus:
 
 
 class RobotPipeline:
-    """One robot: inbox -> decode -> sequence -> monitor -> store -> acknowledge."""
+    """One robot: inbox -> decode -> sequence -> monitor -> store -> acknowledge.
+
+    A step takes what the inbox holds, up to ``max_messages_per_step``: one message or two while the service
+    keeps up, a long run after an outage or a restart, when one commit and one monitor block per 400 messages
+    drain a backlog about 1.4 times faster than per 50 (``python -m benchmarks.service``; the monitor's and the
+    commit's fixed costs are spread over more samples).
+    """
 
     def __init__(
         self,
@@ -167,7 +173,7 @@ class RobotPipeline:
         n_actuators: int,
         limits: PlausibilityLimits | None = None,
         keep_raw: bool = True,
-        max_messages_per_step: int = 50,
+        max_messages_per_step: int = 400,
         max_held_messages: int = 1000,
         reorder_window: int = 4,
         fence: Fence | None = None,
