@@ -144,11 +144,14 @@ def expected_units(
 
 def _frozen_float(name: str, value: Any, shape: tuple[int | None, ...]) -> Array:
     """float64 read-only copy of ``value`` with the given shape (None = any length >= 1), finite."""
-    try:
-        with np.errstate(all="ignore"):  # a signalling NaN from the wire is reported below, not warned about
-            a = np.array(value, dtype=np.float64)
-    except (TypeError, ValueError, OverflowError) as exc:
-        raise _reject("bad_field", f"{name}: not an array of numbers ({exc})") from None
+    if isinstance(value, np.ndarray) and value.dtype == np.float64:
+        a = value.copy()  # the binary decoder's blocks: no conversion, so no floating-point exception to silence
+    else:
+        try:
+            with np.errstate(all="ignore"):  # a signalling NaN from the wire is reported below, not warned about
+                a = np.array(value, dtype=np.float64)
+        except (TypeError, ValueError, OverflowError) as exc:
+            raise _reject("bad_field", f"{name}: not an array of numbers ({exc})") from None
     _check_shape(name, a, shape)
     if not np.isfinite(a).all():
         first = tuple(int(i) for i in np.argwhere(~np.isfinite(a))[0])
