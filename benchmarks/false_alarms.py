@@ -46,7 +46,7 @@ def poisson_interval_per_24h(count: int, hours: float) -> tuple[float, float]:
 def describe(event: dict) -> str:
     """One line for an event: kind, time, and its figures."""
     figures = ", ".join(f"{k} {v}" for k, v in sorted(event.get("figures", {}).items()))[:400]
-    return f"{event['kind']} at {event['start_s']:.3f} s ({event.get('reason', '')}; {figures})"
+    return f"{event['kind']} at {event['start_s']:.3f} s ({event.get('summary', '')}; {figures})"
 
 
 def main(argv: list[str] | None = None) -> None:
@@ -56,6 +56,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--window-s", type=float, default=10.0, help="length of one simulated window [s]")
     parser.add_argument("--windows-per-run", type=int, default=64, help="windows simulated side by side")
     parser.add_argument("--progress-every", type=int, default=500, help="print a progress line every N windows")
+    parser.add_argument("--stop-after", type=int, help="stop after this many windows (to look at one stretch)")
     args = parser.parse_args(argv)
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     clock = time.perf_counter()
@@ -91,9 +92,8 @@ def main(argv: list[str] | None = None) -> None:
         released = [e.batch for b in w.batches for e in tracker.push(b) if isinstance(e, Released)]
         for j in range(0, len(released), 50):
             new_events = monitor.process_many(released[j : j + 50]).events
-            for e in new_events:
-                if e["kind"] in JUDGED_KINDS:
-                    print(f"  window {k - 1} (day {w.truth.day:.3f}): {describe(e)}", flush=True)
+            for e in new_events:  # every event is printed as it comes: none is expected here
+                print(f"  window {k - 1} (day {w.truth.day:.3f}): {describe(e)}", flush=True)
             events.extend(new_events)
         mark = time.perf_counter()
         monitor_s += mark - now
@@ -108,6 +108,8 @@ def main(argv: list[str] | None = None) -> None:
                 flush=True,
             )
         mark = time.perf_counter()
+        if args.stop_after is not None and k >= args.stop_after:
+            break
     events.extend(monitor.flush_events().events)
 
     hours = samples * sc.sampling.sample_step_s / 3600.0
@@ -122,8 +124,7 @@ def main(argv: list[str] | None = None) -> None:
     print(f"          other events (not judged by the scoreboard's row): {others or 'none'}")
     print(f"  shop practice: {shop_alarms} alarms, 95 % interval {s_low:.1f} .. {s_high:.1f} per 24 h")
     for e in events:
-        if e["kind"] in JUDGED_KINDS:
-            print(f"    {describe(e)}")
+        print(f"    {describe(e)}")
     wall_s = time.perf_counter() - clock
     print(
         f"wall {wall_s:.0f} s (simulation {simulate_s:.0f} s, monitor {monitor_s:.0f} s: "

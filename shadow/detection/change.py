@@ -350,17 +350,21 @@ class MassStepSettings:
     learn_count : stretches that set the reference (median) and the spread (1.4826 MAD) before watching
     min_step_kg : the smallest step worth an event; the CUSUM drift is nu = min_step / (2 spread) in [0.5, 2.5]
     spread_floor_kg : lower bound of the spread (identical stretches would otherwise give 0)
-    arl_stretches : mean number of stretches between false alarms on an unchanged mass (Siegmund, eq. 2)
-    confirm_count : stretches after the alarm's onset weighed before the step is reported
+    arl_stretches : mean number of stretches between false alarms on an unchanged mass (Siegmund, eq. 2); a
+        delta picking every 0.9 s weighs about 10^5 transfers (and as many empty moves) a day, so 10^7 is one
+        false step in about 100 days per watch (10^5 was one a day: seen as a 14 g "step" of five light pieces
+        in 24 simulated hours of production, ``python -m benchmarks.false_alarms``)
+    confirm_count : stretches after the alarm's onset weighed before the step is reported (ten: five light
+        pieces in a row are an excursion the GLR must be able to see end)
     history : stretches kept for the GLR estimate of the masses before and after a step
     """
 
     learn_count: int = 20
     min_step_kg: float = 0.02
     spread_floor_kg: float = 1e-3
-    arl_stretches: float = 1e5
+    arl_stretches: float = 1e7
     history: int = 200
-    confirm_count: int = 5
+    confirm_count: int = 10
 
     def __post_init__(self) -> None:
         if self.learn_count < 5 or self.history < 2 * self.learn_count:
