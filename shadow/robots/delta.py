@@ -409,16 +409,23 @@ class DeltaModel:
         m_L = self._payload_mass(theta_p)
         return self._mass_matrix(self._kinematics(q, max_condition=max_condition), m_L)
 
-    def _mass_matrix(self, kin: _Kinematics, m_L: float) -> Array:
+    def _mass_matrix(self, kin: _Kinematics, m_L: float | Array) -> Array:
+        """M for one payload mass [kg] or one per sample (N,)."""
         p = self.params
         w_ee, w_ep, w_pp = _FOREARM_WEIGHTS[self.forearm_model]
         m_f = p.forearm_mass_kg
-        m_x = p.platform_mass_kg + m_L + 3.0 * w_pp * m_f
+        m_x = self._moving_mass(m_L)
         G2 = np.einsum("nik,nik->ni", kin.e1, kin.e1)  # |e1_i|^2 = L_a^2
         K = kin.e1 @ kin.J  # row i: e1_i^T J
         M = (self._rotor_inertia + w_ee * m_f * G2)[:, :, None] * np.eye(3)[None]
         M = M + m_x * np.swapaxes(kin.J, 1, 2) @ kin.J
         return M + w_ep * m_f * (K + np.swapaxes(K, 1, 2))
+
+    def _moving_mass(self, m_L: float | Array) -> Array:
+        """m_x = m_p + m_L + 3 w_pp m_f, shaped (1, 1, 1) or (N, 1, 1) to scale (N, 3, 3) blocks."""
+        w_pp = _FOREARM_WEIGHTS[self.forearm_model][2]
+        m_x = self.params.platform_mass_kg + np.asarray(m_L, dtype=float) + 3.0 * w_pp * self.params.forearm_mass_kg
+        return np.reshape(m_x, (-1, 1, 1))
 
     def bias_efforts(
         self, q: Array, qd: Array, theta_p: Array, *, max_condition: float = DEFAULT_MAX_CONDITION
@@ -428,11 +435,13 @@ class DeltaModel:
         _same_length(q, qd)
         m_L = self._payload_mass(theta_p)
         kin = self._kinematics(q, max_condition=max_condition)
-        rates = self._rates(kin, qd)
+        return self._bias_efforts(kin, self._rates(kin, qd), qd, m_L)
+
+    def _bias_efforts(self, kin: _Kinematics, rates: _Rates, qd: Array, m_L: float | Array) -> Array:
         p = self.params
-        w_ee, w_ep, w_pp = _FOREARM_WEIGHTS[self.forearm_model]
+        w_ee, w_ep, _ = _FOREARM_WEIGHTS[self.forearm_model]
         m_f = p.forearm_mass_kg
-        m_x = p.platform_mass_kg + m_L + 3.0 * w_pp * m_f
+        m_x = self._moving_mass(m_L)[:, :, 0]  # (1 | N, 1)
         c = np.einsum("nij,nj->ni", rates.Jd, qd)  # dJ/dt qd
         aE0 = kin.e2 * (qd**2)[:, :, None]  # dG_i/dt qd
         h = m_f * np.einsum("nik,nik->ni", kin.e1, w_ee * aE0 + w_ep * c[:, None, :])
@@ -450,14 +459,14 @@ class DeltaModel:
         _same_length(q, qd)
         m_L = self._payload_mass(theta_p)
         kin = self._kinematics(q, max_condition=max_condition)
-        rates = self._rates(kin, qd)
-        p = self.params
-        w_ee, w_ep, w_pp = _FOREARM_WEIGHTS[self.forearm_model]
-        m_f = p.forearm_mass_kg
-        m_x = p.platform_mass_kg + m_L + 3.0 * w_pp * m_f
+        return self._mass_matrix_rate(kin, self._rates(kin, qd), qd, m_L)
+
+    def _mass_matrix_rate(self, kin: _Kinematics, rates: _Rates, qd: Array, m_L: float | Array) -> Array:
+        w_ep = _FOREARM_WEIGHTS[self.forearm_model][1]
+        m_f = self.params.forearm_mass_kg
         JtJd = np.swapaxes(kin.J, 1, 2) @ rates.Jd
         Kd = (kin.e2 * qd[:, :, None]) @ kin.J + kin.e1 @ rates.Jd
-        return m_x * (JtJd + np.swapaxes(JtJd, 1, 2)) + w_ep * m_f * (Kd + np.swapaxes(Kd, 1, 2))
+        return self._moving_mass(m_L) * (JtJd + np.swapaxes(JtJd, 1, 2)) + w_ep * m_f * (Kd + np.swapaxes(Kd, 1, 2))
 
     def momentum_terms(
         self, q: Array, qd: Array, payload_mass_kg: Array, *, max_condition: float = DEFAULT_MAX_CONDITION
@@ -475,24 +484,9 @@ class DeltaModel:
         expect_finite("payload_mass_kg", m_L)
         kin = self._kinematics(q, max_condition=max_condition)
         rates = self._rates(kin, qd)
-        p = self.params
-        w_ee, w_ep, w_pp = _FOREARM_WEIGHTS[self.forearm_model]
-        m_f = p.forearm_mass_kg
-        m_x = (p.platform_mass_kg + 3.0 * w_pp * m_f + m_L)[:, None, None]  # (N, 1, 1)
-        Jt = np.swapaxes(kin.J, 1, 2)
-        K = kin.e1 @ kin.J
-        G2 = np.einsum("nik,nik->ni", kin.e1, kin.e1)
-        M = (self._rotor_inertia + w_ee * m_f * G2)[:, :, None] * np.eye(3)[None]
-        M = M + m_x * (Jt @ kin.J) + w_ep * m_f * (K + np.swapaxes(K, 1, 2))
-        c = np.einsum("nij,nj->ni", rates.Jd, qd)  # dJ/dt qd
-        aE0 = kin.e2 * (qd**2)[:, :, None]
-        h = m_f * np.einsum("nik,nik->ni", kin.e1, w_ee * aE0 + w_ep * c[:, None, :])
-        h = h + np.einsum("nki,nk->ni", kin.J, m_x[:, :, 0] * c + w_ep * m_f * aE0.sum(axis=1))
-        h = h + self._gravity_efforts(kin, m_L)
-        JtJd = Jt @ rates.Jd
-        Kd = (kin.e2 * qd[:, :, None]) @ kin.J + kin.e1 @ rates.Jd
-        Md = m_x * (JtJd + np.swapaxes(JtJd, 1, 2)) + w_ep * m_f * (Kd + np.swapaxes(Kd, 1, 2))
-        return M, h - np.einsum("nij,nj->ni", Md, qd)
+        Md = self._mass_matrix_rate(kin, rates, qd, m_L)
+        beta = self._bias_efforts(kin, rates, qd, m_L) - np.einsum("nij,nj->ni", Md, qd)
+        return self._mass_matrix(kin, m_L), beta
 
     def rigid_regressor(
         self, q: Array, qd: Array, qdd: Array, *, max_condition: float = DEFAULT_MAX_CONDITION

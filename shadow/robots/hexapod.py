@@ -568,28 +568,10 @@ class HexapodModel:
 
         ``dM/dt = J^T (dM_x/dt) J - K^T M - M K`` with ``K = (dJ_inv/dt) J`` (from ``dJ/dt = -J (dJ_inv/dt) J``).
         """
-        theta = self._theta(theta_p) + self._theta_platform
-        q = _checked("q", q, (None, 6))
-        qd = _checked("qd", qd, (q.shape[0], 6))
-        p, R = self.forward_kinematics(q)
-        j_inv = self._inverse_jacobian(p, R)
-        jac = self._checked_inverse(j_inv)
-        twist = _mv(jac, qd)
-        m = self._leg_motion(p, R, twist, np.zeros_like(twist))
-        mq = self._actuator_mass_matrix(jac, self._platform_mass_matrix(p, R, theta))
-        mq_x = self._actuator_mass_matrix(jac, self._platform_mass_matrix_rate(p, R, twist, theta))
-        k = self._inverse_jacobian_rate(m, twist) @ jac  # K = (d J_inv / dt) J
-        return mq_x - np.swapaxes(k, 1, 2) @ mq - mq @ k
+        return self._mass_terms(q, qd, self._theta(theta_p))[1]
 
-    def momentum_terms(self, q: Array, qd: Array, theta_p: Array) -> tuple[Array, Array]:
-        """(M (N, 6, 6) [kg], beta (N, 6) [N]) for the momentum observer, from one forward kinematics.
-
-        ``beta = h - dM/dt qd``: the terms :meth:`mass_matrix`, :meth:`bias_efforts` and
-        :meth:`mass_matrix_rate` give one by one (each solving the forward kinematics again), with the pose,
-        Jacobian and twist shared. ``h = F(q, qd, qdd = 0)``: the platform acceleration at zero leg acceleration
-        is ``-J c`` (see :meth:`platform_motion`).
-        """
-        theta_in = self._theta(theta_p)
+    def _mass_terms(self, q: Array, qd: Array, theta_in: Array) -> tuple[Array, Array, tuple[Array, ...]]:
+        """(M, dM/dt, (p, R, J, twist, leg motion at zero accel)) from one forward kinematics."""
         theta = theta_in + self._theta_platform
         q = _checked("q", q, (None, 6))
         qd = _checked("qd", qd, (q.shape[0], 6))
@@ -600,7 +582,18 @@ class HexapodModel:
         mq = self._actuator_mass_matrix(jac, self._platform_mass_matrix(p, R, theta))
         mq_x = self._actuator_mass_matrix(jac, self._platform_mass_matrix_rate(p, R, twist, theta))
         k = self._inverse_jacobian_rate(m, twist) @ jac  # K = (d J_inv / dt) J
-        md = mq_x - np.swapaxes(k, 1, 2) @ mq - mq @ k
+        return mq, mq_x - np.swapaxes(k, 1, 2) @ mq - mq @ k, (p, R, jac, twist, m)
+
+    def momentum_terms(self, q: Array, qd: Array, theta_p: Array) -> tuple[Array, Array]:
+        """(M (N, 6, 6) [kg], beta (N, 6) [N]) for the momentum observer, from one forward kinematics.
+
+        ``beta = h - dM/dt qd``: the terms :meth:`mass_matrix`, :meth:`bias_efforts` and
+        :meth:`mass_matrix_rate` give one by one (each solving the forward kinematics again), with the pose,
+        Jacobian and twist shared. ``h = F(q, qd, qdd = 0)``: the platform acceleration at zero leg acceleration
+        is ``-J c`` (see :meth:`platform_motion`).
+        """
+        theta_in = self._theta(theta_p)
+        mq, md, (p, R, jac, twist, m) = self._mass_terms(q, qd, theta_in)
         tau_known, y_p = self._platform_regressor(p, R, twist, _mv(jac, -m.qdd))  # m.qdd = c at zero accel
         h = tau_known + y_p @ theta_in
         return mq, h - _mv(md, qd)
