@@ -206,6 +206,8 @@ class CompliantCoupling:
 
     def effort(self, delta: Array, delta_rate: Array) -> Array:
         """tau_c = k dz(delta) + c delta' in contact, 0 inside the gap; (B, n), motor side pushes load side."""
+        if not isinstance(self.backlash, np.ndarray) and self.backlash == 0.0:  # scalar 0: the common case, no test
+            return self.stiffness * delta + self.damping * delta_rate  # no gap: plain spring-damper
         half = 0.5 * np.asarray(self.backlash, dtype=float)
         if not np.any(half > 0.0):
             return self.stiffness * delta + self.damping * delta_rate  # no gap: plain spring-damper

@@ -37,9 +37,11 @@ with a coupling). It makes the transient's contribution exact for any step, up t
 
 M and h for a per-system payload (the model's methods take one theta_p for all rows) come from the linearity
 in theta_p: ``h = tau_known + Y_p theta_p`` of the rigid regressor at qdd = 0, and M by the cheaper exact route
-of :func:`mass_terms`; when every row carries the same payload (always for B = 1) the model's own ``M(q, theta)``
-and ``h(q, qd)`` are called once each, the cheapest route. A hexapod plant built by :func:`simulators.run.demo_loop`
-integrates :class:`simulators.kinematics.WarmStartHexapod`, whose forward kinematics starts from the last pose.
+of :func:`mass_terms`; when every row carries the same payload (always for B = 1) a delta or hexapod goes through
+:class:`simulators.stage_terms.SharedRigidTerms`: the model's own M and h with the kinematics evaluated once per
+stage (one delta on Python floats, equal to the model's to rounding), the cheapest route. A hexapod plant built
+by :func:`simulators.run.demo_loop` integrates :class:`simulators.kinematics.WarmStartHexapod`, whose forward
+kinematics starts from the last pose.
 
 State layout: ``position = [q]`` (B, n) or ``[q, q_m]`` (B, 2n); ``velocity`` likewise.
 """
@@ -57,6 +59,7 @@ from shadow.errors import ConfigurationError, ShapeError, expect_shape
 from shadow.robots.mechanism import Mechanism
 from simulators.effects import CompliantCoupling, DriveThermal, StribeckFriction
 from simulators.integrators import Method, heun_step, rk4_step, second_order_derivative, symplectic_euler_step
+from simulators.stage_terms import SharedRigidTerms
 
 Array = NDArray[np.float64]
 
@@ -278,6 +281,14 @@ def transient_weights(method: Method, time_constant_s: Array, step_s: float) -> 
     return np.where(ideal, 0.0, exact_v - quad_v), np.where(ideal, 0.0, exact_q - quad_q)
 
 
+def _may_act(pulse: PlatformPulse, t_start_s: float, t_end_s: float) -> bool:
+    """False only if no system's pulse can be active anywhere in [t_start_s, t_end_s] (margin 1e-9 of the scale)."""
+    start = np.asarray(pulse.start_s, dtype=float)
+    end = start + np.asarray(pulse.duration_s, dtype=float)
+    margin = 1e-9 * (1.0 + abs(t_end_s) + float(np.max(np.abs(end), initial=0.0)))
+    return bool(np.any((start < t_end_s + margin) & (end > t_start_s - margin) & (np.asarray(pulse.peak) != 0.0)))
+
+
 class Plant:
     """Rigid mechanism plus drive effects, integrated with a fixed internal step.
 
@@ -315,6 +326,8 @@ class Plant:
         self._coupling = config.coupling
         self._transient = transient_weights(method, self._tc, self.internal_step_s)  # (w_v, w_q) per actuator
         self._jr_diag = np.diag(self._jr)[None]  # (1, n, n) diag J_r
+        self._shared_terms = SharedRigidTerms.for_mechanism(mechanism)  # M and h sharing the kinematics
+        self._no_mass = np.empty((0, n, n))  # stands for "M not evaluated" in rigid_stage
         self._decay: dict[float, Array] = {}  # exp(-t / T_c) (n,) by elapsed time t, the same few t every step
 
     # ------------------------------------------------------------------------------------------ set-up
@@ -389,8 +402,8 @@ class Plant:
         """
         n = self.n
         q, qd = position[:, :n], velocity[:, :n]
-        m = mass_terms(self.mechanism, q, theta_p) if mass_matrix is None else mass_matrix
-        h = bias_terms(self.mechanism, q, qd, theta_p)
+        m_q, h = self.rigid_stage(q, qd, theta_p, need_mass=mass_matrix is None)
+        m = m_q if mass_matrix is None else mass_matrix
         tau_ext = self.external_effort(q, wrench)
         if not self.compliant:
             tau_f = self.friction_effort(qd, temperature_c)
@@ -407,6 +420,26 @@ class Plant:
             effort - self.friction_effort(qdm, temperature_c) - tau_c
         ) / self._jr  # J_r qdd_m = tau_a - tau_f - tau_c
         return np.concatenate([qdd, qddm], axis=1)
+
+    def rigid_stage(self, q: Array, qd: Array, theta_p: Array, *, need_mass: bool) -> tuple[Array, Array]:
+        """(M (B, n, n), h (B, n)) at one stage; M is not evaluated (an empty array) when ``need_mass`` is False.
+
+        One payload for all rows: :class:`simulators.stage_terms.SharedRigidTerms` (the model's M and h with the
+        kinematics evaluated once); else :func:`mass_terms` and :func:`bias_terms`.
+        """
+        theta = shared_payload(theta_p)
+        if theta is not None and self._shared_terms is not None:
+            m, h = self._shared_terms(q, qd, theta, need_mass=need_mass)
+            return (self._no_mass if m is None else m), h
+        m = mass_terms(self.mechanism, q, theta_p) if need_mass else self._no_mass
+        return m, bias_terms(self.mechanism, q, qd, theta_p)
+
+    def mass_at(self, q: Array, theta_p: Array) -> Array:
+        """M (B, n, n) alone: :meth:`SharedRigidTerms.mass` for one payload for all rows, else :func:`mass_terms`."""
+        theta = shared_payload(theta_p)
+        if theta is not None and self._shared_terms is not None:
+            return self._shared_terms.mass(q, theta)
+        return mass_terms(self.mechanism, q, theta_p)
 
     def effort_at(self, effort0: Array, command: Array, elapsed_s: float) -> Array:
         """tau_a after ``elapsed_s`` with u held: u + (tau_a0 - u) exp(-t / T_c) (exact first-order lag)."""
@@ -462,8 +495,15 @@ class Plant:
         step = self.internal_step_s
         d = state.position.shape[1]
 
+        # pulses that may act during this call: the others give no wrench at any stage (a conservative time test
+        # with a margin; a pulse that passes it is evaluated exactly at every stage, as before)
+        span = n_steps * step
+        live = [pulse for pulse in pulses if _may_act(pulse, t0, t0 + span)]
+
         def wrench(t: float) -> Array | None:
-            parts = [w for w in (pulse.wrench(t) for pulse in pulses) if w is not None]
+            if not live:
+                return None
+            parts = [w for w in (pulse.wrench(t) for pulse in live) if w is not None]
             return None if not parts else np.sum(parts, axis=0)
 
         hold = self.mass_update is MassUpdate.EVERY_STEP
@@ -475,7 +515,7 @@ class Plant:
         # ...) are the same floats every sample and the lag's decay factors come from a table (see effort_at).
         def extrapolate(q: Array, s_k: float) -> None:
             nonlocal history
-            m_k = mass_terms(self.mechanism, q, theta_p)
+            m_k = self.mass_at(q, theta_p)
             t_k = t0 + s_k
             # extrapolate only along the same payload (a payload change is a jump, not a rate)
             use = history is not None and t_k > history[1] and np.array_equal(history[2], theta_p)
@@ -499,7 +539,7 @@ class Plant:
             m = None
             if not self.compliant:
                 h_m = held[0]
-                m = mass_terms(self.mechanism, pos_start[:, : self.n], theta_p) if h_m is None else h_m[0]
+                m = self.mass_at(pos_start[:, : self.n], theta_p) if h_m is None else h_m[0]
             return self._correct_transient(pos_new, vel_new, excess, m)
 
         pos, vel = state.position, state.velocity
