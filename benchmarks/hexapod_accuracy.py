@@ -9,11 +9,15 @@ monitor follows the stream (wire batches through :class:`shadow.ingest.wire.Sequ
 :meth:`shadow.monitoring.RobotMonitor.process_many`) along three routes:
 
 * commissioned: ``shadow commission`` on a separate healthy run (other seed), then the monitor from that baseline;
+* commissioned, Stribeck velocity chosen from the run: the same with ``--stribeck-velocity auto``;
 * nominal: the monitor from the description's nominal baseline (its payload prior is the declared fixture, which
   is the plant's payload: the route starts at the truth);
 * empty prior: the nominal baseline with the payload prior set to an empty platform (all ten parameters 0), so the
   filter has to find the whole fixture; where it ends up beside the nominal route tells a bias of the data from a
   slow pull away from the prior.
+* without the Stribeck term: the nominal route with the friction form cut to Coulomb, viscous and offset (what
+  the tracker followed before the description declared the term): the plant's breakaway hump, which the
+  Coulomb-viscous form cannot follow, then biases the centre of mass.
 
 Per route it prints the payload mass against the truth (error in %), the centre of mass ``c = (m c) / m`` against
 the truth in mm (per axis and the Euclidean distance), the filter's std of each (first-order propagation of the
@@ -23,8 +27,8 @@ parameters identifiable, and the posterior correlations that say which direction
 The goal stated for the project is mass within 3 % and centre of mass within 5 mm.
 
 A diagnostic run repeats the production stream with the same seed (same path, same noise) on a plant whose
-friction has no Stribeck hump (static level = Coulomb level, the estimator's own friction form): what changes
-between the two is what the hump does to the payload estimate.
+friction has no Stribeck hump (static level = Coulomb level), followed from the nominal baseline: what changes
+between the two is what the hump still does to the payload estimate.
 
 Last, the simulator's own hexapod feed (:func:`simulators.live.simulate_windows`), which loads the part in the
 dwell after every other move and unloads it after the next: the true payload is a square wave, not one set of
@@ -335,13 +339,17 @@ def strongest_correlations(followed: Followed, parameter: str, count: int = 2) -
     return [(names[j], float(row[j])) for j in order]
 
 
-def commission_baseline(description: RobotDescription, stream: Stream, workdir: Path) -> Baseline:
+def commission_baseline(
+    description: RobotDescription, stream: Stream, workdir: Path, *, stribeck_velocity: str = "described"
+) -> Baseline:
     """Write the stream as a recording and run ``shadow commission`` on it (its report goes to stdout)."""
-    recording, baseline = workdir / "healthy.jsonl", workdir / "baseline.json"
-    with RecordingWriter(recording) as out:
-        for b in stream.batches:
-            out.write(b)
+    recording, baseline = workdir / "healthy.jsonl", workdir / f"baseline-{stribeck_velocity}.json"
+    if not recording.exists():
+        with RecordingWriter(recording) as out:
+            for b in stream.batches:
+                out.write(b)
     args = ["commission", str(description.source), str(recording), "-o", str(baseline), "--robot", ROBOT_ID]
+    args += ["--stribeck-velocity", stribeck_velocity]
     code = shadow_main(args)
     if code != 0:
         raise RuntimeError(f"shadow commission failed with exit code {code}")
@@ -353,7 +361,26 @@ def empty_prior(description: RobotDescription) -> Baseline:
     return dataclasses.replace(nominal_baseline(description), payload_parameters=np.zeros(10))
 
 
+def without_stribeck(baseline: Baseline) -> Baseline:
+    """``baseline`` with the friction form cut to Coulomb, viscous and offset per actuator (no Stribeck term)."""
+    if baseline.stribeck_velocity is None:
+        return baseline
+    n = baseline.n_actuators
+    keep = (np.arange(4 * n) % 4) < 3
+    return dataclasses.replace(
+        baseline,
+        friction_parameters=baseline.friction_parameters[keep],
+        friction_covariance=baseline.friction_covariance[np.ix_(keep, keep)],
+        stribeck_velocity=None,
+    )
+
+
 # ------------------------------------------------------------------------------------------------ printing
+def _velocity_mm_s(baseline: Baseline) -> str:
+    v = baseline.stribeck_velocity
+    return "no Stribeck term" if v is None else f"v_st {1000.0 * v:.2f} mm/s"
+
+
 def _line(j: Judged, truth: Array) -> str:
     mm = 1000.0
     c_true = truth[1:4] / truth[0]
@@ -470,6 +497,8 @@ def main(argv: list[str] | None = None) -> None:
     print("\nshadow commission on the healthy run:")
     with tempfile.TemporaryDirectory(prefix="shadow-hexapod-accuracy-") as tmp:
         commissioned = commission_baseline(desc, healthy, Path(tmp))
+        print("\nshadow commission --stribeck-velocity auto on the same run:")
+        chosen = commission_baseline(desc, healthy, Path(tmp), stribeck_velocity="auto")
     checkpoints = (10.0, 30.0, 60.0, 120.0)
     if commissioned.payload_parameters is not None:
         start = commissioned.payload_parameters
@@ -477,8 +506,13 @@ def main(argv: list[str] | None = None) -> None:
               f"centre of mass [{', '.join(f'{1000 * v:+.1f}' for v in start[1:4] / start[0])}] mm")  # fmt: skip
     routes = [
         ("commissioned baseline", commissioned),
+        (f"commissioned baseline, Stribeck velocity chosen from the run ({_velocity_mm_s(chosen)})", chosen),
         ("nominal baseline (prior = declared fixture)", nominal_baseline(desc)),
         ("nominal baseline, empty-platform payload prior", empty_prior(desc)),
+        (
+            "nominal baseline without the Stribeck term (Coulomb, viscous, offset)",
+            without_stribeck(nominal_baseline(desc)),
+        ),
     ]
     finals = {}
     for name, baseline in routes:

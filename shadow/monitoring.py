@@ -200,11 +200,14 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
     drives = description.parameters.drives
     rated = np.array([d.rated_effort for d in drives], dtype=float)
     n = len(drives)
+    v_st = description.friction.stribeck_velocity if description.friction is not None else None
+    k = 3 if v_st is None else 4
     if description.friction is not None:
         theta_f = description.friction.parameters()
     else:
-        theta_f = np.zeros(3 * n)
-    scale = np.repeat(rated, 3) * np.tile([0.02, 0.002, 0.02], n)  # N m | N, per (rad/s | m/s), N m | N
+        theta_f = np.zeros(k * n)
+    # N m | N, per (rad/s | m/s), N m | N (and N m | N for the Stribeck level)
+    scale = np.repeat(rated, k) * np.tile([0.02, 0.002, 0.02, 0.02][:k], n)
     std = 0.5 * np.abs(theta_f) + scale
     tool = description.tool
     t_ref = None  # the temperature the declared viscous friction holds at, when declared
@@ -218,6 +221,7 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
             tool_mass_kg=tool.tool_mass_kg,  # type: ignore[union-attr]
             work_piece_mass_kg=tool.work_piece_mass_kg,  # type: ignore[union-attr]
             reference_temperature_k=t_ref,
+            stribeck_velocity=v_st,
         )
     payload = tool.payload_parameters()
     return Baseline(
@@ -228,7 +232,28 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
         work_piece_mass_kg=0.0,
         payload_parameters=payload,
         reference_temperature_k=t_ref,
+        stribeck_velocity=v_st,
     )
+
+
+def with_friction_form(settings: MonitorSettings, stribeck_velocity: float | None) -> MonitorSettings:
+    """``settings`` following the friction form of a baseline: with the Stribeck term at ``stribeck_velocity``
+    [rad/s | m/s], or without it (None).
+
+    The per-class random walk and resolution get a fourth entry for the Stribeck level, the Coulomb class's
+    (both are levels of the same friction curve, in N m | N), or lose it.
+    """
+    tracker = settings.tracker
+    if tracker.stribeck_velocity == stribeck_velocity:
+        return settings
+    walk = np.asarray(tracker.friction_walk_std, dtype=float)[:3]
+    resolution = np.asarray(tracker.friction_resolution, dtype=float)[:3]
+    if stribeck_velocity is not None:
+        walk, resolution = np.append(walk, walk[0]), np.append(resolution, resolution[0])
+    tracker = replace(
+        tracker, stribeck_velocity=stribeck_velocity, friction_walk_std=walk, friction_resolution=resolution
+    )
+    return replace(settings, tracker=tracker)
 
 
 def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1000.0) -> MonitorSettings:
@@ -262,7 +287,10 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         reported_effort=reported,
         command_period_s=command_period,
     )
-    return MonitorSettings(tracker=tracker, sample_rate_hz=sample_rate_hz, wear_reference_speed=1.0 if delta else 0.05)
+    settings = MonitorSettings(
+        tracker=tracker, sample_rate_hz=sample_rate_hz, wear_reference_speed=1.0 if delta else 0.05
+    )
+    return with_friction_form(settings, description.friction.stribeck_velocity if description.friction else None)
 
 
 def calibrated_thresholds(residual: Array, settings: MonitorSettings, *, margin: float = 1.25) -> Array:
@@ -315,7 +343,9 @@ class RobotMonitor:
         self.description = description
         self.model = build_model(description)
         self.baseline = baseline if baseline is not None else nominal_baseline(description)
-        self.settings = settings if settings is not None else default_settings(description)
+        # the baseline fixes the friction form (with or without the Stribeck term) the tracker follows
+        settings = settings if settings is not None else default_settings(description)
+        self.settings = with_friction_form(settings, self.baseline.stribeck_velocity)
         self.tracker = PayloadFrictionTracker(self.model, self.settings.tracker, self.baseline)
         drives = description.parameters.drives
         self.n = len(drives)

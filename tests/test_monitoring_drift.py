@@ -373,7 +373,10 @@ def test_a_softer_drive_train_after_a_restart_is_one_drift_event(knocked) -> Non
     assert fig["frequency_before_hz"] == pytest.approx(f_stiff, rel=0.05)  # measured +2.4 % (median of two)
     assert fig["frequency_after_hz"] == pytest.approx(f_soft, rel=0.05)  # measured +1.8 %
     assert fig["frequency_drop_fraction"] == pytest.approx(1 - f_soft / f_stiff, abs=0.03)
-    assert fig["damping_ratio_after"] == pytest.approx(zeta_soft, rel=0.35)
+    # measured +46 % since the example hexapod's friction carries a Stribeck term (before it, within 35 %): in the
+    # dwells the platform rings about zero speed, where the Coulomb and Stribeck columns follow the sign of the
+    # ringing velocity; the linearised reference leaves friction's Coulomb part out
+    assert fig["damping_ratio_after"] == pytest.approx(zeta_soft, rel=0.5)
     assert knocked["soft"].window_start_s(0) <= event["start_s"] < event["end_s"]
     last = mode_rows(knocked["after"], "mode_frequency_hz")[-1]
     assert last["identifiable"] and last["value"] == pytest.approx(f_soft, rel=0.05)

@@ -43,6 +43,7 @@ from shadow.estimation.commissioning import (
     condition_run,
     fit_sample_clock,
     identify_run,
+    identify_stribeck_velocity,
     identify_viscous_temperature,
     unseen_prior_std,
 )
@@ -110,6 +111,13 @@ def register(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> N
         choices=("auto", "full", "mass"),
         default="auto",
         help="hexapod: estimate all ten payload parameters, the mass only, or decide from the run (default)",
+    )
+    parser.add_argument(
+        "--stribeck-velocity",
+        default="described",
+        metavar="V|auto|none|described",
+        help="friction's Stribeck term: its velocity v_st [rad/s | m/s], 'auto' (chosen from the run by profiled "
+        "likelihood), 'none', or 'described' (the description's [friction] value, else none; default)",
     )
     parser.add_argument(
         "--half-window",
@@ -304,6 +312,7 @@ def _settings(args: argparse.Namespace, description: RobotDescription, sample_pe
         raise ConfigurationError(f"--max-gap-s: must be > 0, got {args.max_gap_s}")
     return CommissioningSettings(
         smooth_velocity=v_s,
+        stribeck_velocity=_stribeck_option(args.stribeck_velocity, description),
         half_window=args.half_window,
         poly_order=args.poly_order,
         max_gap_s=args.max_gap_s,
@@ -314,6 +323,38 @@ def _settings(args: argparse.Namespace, description: RobotDescription, sample_pe
         max_condition=args.max_condition,
         velocity_unit="rad/s" if rotary else "m/s",
     )
+
+
+def _stribeck_option(value: str, description: RobotDescription) -> float | None:
+    """v_st from --stribeck-velocity ('auto' is resolved later, from the run: None here)."""
+    if value in ("none", "auto"):
+        return None
+    if value == "described":
+        return description.friction.stribeck_velocity if description.friction is not None else None
+    try:
+        v_st = float(value)
+    except ValueError:
+        raise ConfigurationError(
+            f"--stribeck-velocity: expected a velocity, 'auto', 'none' or 'described', got {value!r}"
+        ) from None
+    if not (math.isfinite(v_st) and v_st > 0):
+        raise ConfigurationError(f"--stribeck-velocity: must be a finite velocity > 0, got {value!r}")
+    return v_st
+
+
+def _nominal_friction(description: RobotDescription, stribeck_velocity: float | None) -> Array | None:
+    """The description's friction (k n,) in the form the run is identified with (Stribeck level 0 where the
+    description declares none); None without a [friction] section."""
+    friction = description.friction
+    if friction is None:
+        return None
+    n = description.n_actuators
+    per = friction.parameters().reshape(n, friction.per_actuator)
+    theta = per[:, :3]
+    if stribeck_velocity is not None:
+        level = per[:, 3:4] if friction.per_actuator == 4 else np.zeros((n, 1))
+        theta = np.concatenate([theta, level], axis=1)
+    return theta.reshape(-1)
 
 
 def _conditioned(rec: Recording, settings: CommissioningSettings, fit_clock: bool) -> ConditionedRun:
@@ -355,14 +396,23 @@ def run(args: argparse.Namespace) -> int:
     nominal_payload = None
     if isinstance(description.tool, HexapodFixture):
         nominal_payload = description.tool.payload_parameters()
-    ident = identify_run(model, run_c, settings, payload=args.payload, nominal_payload=nominal_payload)
-    nominal_friction = description.friction.parameters() if description.friction is not None else None
+    stribeck_search = None
+    if args.stribeck_velocity == "auto":
+        stribeck_search = identify_stribeck_velocity(
+            model, run_c, settings, payload=args.payload, nominal_payload=nominal_payload
+        )
+        settings = dataclasses.replace(settings, stribeck_velocity=stribeck_search.velocity)
+        ident = stribeck_search.identification
+    else:
+        ident = identify_run(model, run_c, settings, payload=args.payload, nominal_payload=nominal_payload)
+    nominal_friction = _nominal_friction(description, settings.stribeck_velocity)
     baseline = baseline_from_identification(
         ident,
         description.n_actuators,
         unseen_std=unseen_prior_std(run_c, ident, settings),
         nominal_friction=nominal_friction,
         nominal_work_piece_kg=getattr(description.tool, "work_piece_mass_kg", None),
+        stribeck_velocity=settings.stribeck_velocity,
     )
     temperature = identify_viscous_temperature(model, run_c, ident, settings)
     baseline = dataclasses.replace(
@@ -377,12 +427,27 @@ def run(args: argparse.Namespace) -> int:
     )
     doc = baseline_document(description, rec, run_c, settings, ident, baseline, gains, args)
     doc["temperature_law"] = temperature_law_document(description, temperature)
+    if stribeck_search is not None:
+        doc["stribeck_search"] = {
+            "chosen": stribeck_search.velocity,
+            "reason": stribeck_search.reason,
+            "candidates": stribeck_search.candidates.tolist(),
+            "cost": stribeck_search.cost.tolist(),
+            "cost_without": stribeck_search.cost_without,
+            "statistic": stribeck_search.statistic,
+            "threshold": stribeck_search.threshold,
+        }
     try:
         args.output.parent.mkdir(parents=True, exist_ok=True)
         args.output.write_text(json.dumps(doc, indent=1, allow_nan=False) + "\n", encoding="utf-8")
     except OSError as exc:
         raise ConfigurationError(f"{args.output}: cannot write the baseline: {exc.strerror or exc}") from exc
     print("\n".join(report_lines(description, rec, run_c, ident, gains, args)))
+    speed = "rad/s" if description.family == "delta" else "m/s"
+    if stribeck_search is not None:
+        print(f"friction form chosen from the run: {stribeck_search.reason}")
+    elif settings.stribeck_velocity is not None:
+        print(f"friction form: with the Stribeck term at v_st = {settings.stribeck_velocity:.3g} {speed}")
     print("\n".join(temperature_lines(description, temperature)))
     unit = "N m" if description.family == "delta" else "N"
     thresholds = ", ".join(f"{i + 1}: {v:.3g} {unit}" for i, v in enumerate(baseline.collision_threshold))  # type: ignore[arg-type]
@@ -455,6 +520,7 @@ def baseline_document(
         "max_gap_s": settings.max_gap_s,
         "fitted_clock": bool(args.fit_clock),
         "smooth_velocity": settings.smooth_velocity,
+        "stribeck_velocity": settings.stribeck_velocity,
         "current_loop_lag": settings.current_loop_bandwidth_hz is not None,
         "estimator": "weighted least squares, weights 1/sigma per actuator, reweighted once",
         "confidence": settings.confidence,

@@ -56,6 +56,11 @@ def _scalar(d: Mapping[str, Any], name: str) -> float:
     return v
 
 
+def _optional_scalar(d: Mapping[str, Any], name: str) -> float | None:
+    """A number, or None where the field is absent or null."""
+    return None if d.get(name) is None else _scalar(d, name)
+
+
 def _vector_or_nan(name: str, value: Any, length: int) -> Array:
     """A vector of ``length`` numbers in which None or NaN marks "not known" (stored as NaN); no infinities."""
     try:
@@ -99,6 +104,8 @@ class Baseline:
         NaN entries: that actuator's temperature was not recorded)
     viscous_temperature_coefficient_per_k : (n,) k_v identified at commissioning [1/K], NaN where not identified,
         or None (not identified; files written before it existed lack the field)
+    stribeck_velocity : v_st of the friction model's Stribeck term [rad/s | m/s], or None: no Stribeck term. It
+        fixes the friction form the live tracker follows: k = 4 parameters per actuator with it, 3 without
     """
 
     friction_parameters: Array
@@ -110,6 +117,7 @@ class Baseline:
     collision_threshold: Array | None = None
     reference_temperature_k: Array | None = None
     viscous_temperature_coefficient_per_k: Array | None = None
+    stribeck_velocity: float | None = None
 
     def __post_init__(self) -> None:
         f = _vector({"friction_parameters": self.friction_parameters}, "friction_parameters")
@@ -139,6 +147,17 @@ class Baseline:
                 raise ConfigurationError(f"collision_threshold: must be > 0, got {thr}")
             object.__setattr__(self, "collision_threshold", thr)
         n = noise.shape[0]
+        if self.stribeck_velocity is not None:
+            v_st = float(self.stribeck_velocity)
+            if not (np.isfinite(v_st) and v_st > 0):
+                raise ConfigurationError(f"stribeck_velocity: must be finite and > 0, got {self.stribeck_velocity}")
+            object.__setattr__(self, "stribeck_velocity", v_st)
+        k = 3 if self.stribeck_velocity is None else 4
+        if f.shape[0] != k * n:
+            form = "Coulomb, viscous, offset" + (", Stribeck" if k == 4 else "")
+            raise ConfigurationError(
+                f"friction_parameters: expected {k * n} numbers ({form} for each of {n} actuators), got {f.shape[0]}"
+            )
         if self.reference_temperature_k is not None:
             t_ref = _vector_or_nan("reference_temperature_k", self.reference_temperature_k, n)
             if np.any(t_ref[np.isfinite(t_ref)] <= 0.0):
@@ -170,6 +189,7 @@ class Baseline:
             "collision_threshold": None if self.collision_threshold is None else self.collision_threshold.tolist(),
             "reference_temperature_k": _list_or_none(self.reference_temperature_k),
             "viscous_temperature_coefficient_per_k": _list_or_none(self.viscous_temperature_coefficient_per_k),
+            "stribeck_velocity": self.stribeck_velocity,
         }
 
     @classmethod
@@ -192,4 +212,5 @@ class Baseline:
             collision_threshold=None if d.get("collision_threshold") is None else _vector(d, "collision_threshold"),
             reference_temperature_k=_optional_vector_or_nan(d, "reference_temperature_k"),
             viscous_temperature_coefficient_per_k=_optional_vector_or_nan(d, "viscous_temperature_coefficient_per_k"),
+            stribeck_velocity=_optional_scalar(d, "stribeck_velocity"),  # files written before it: None
         )

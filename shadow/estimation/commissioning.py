@@ -87,6 +87,7 @@ Public API
 ----------
 condition_run, fit_sample_clock              centred Savitzky-Golay conditioning; stamps onto a fitted fixed-rate clock
 identify_run -> Identification               payload, friction, noise, intervals, excitation report
+identify_stribeck_velocity -> StribeckSearch the Stribeck velocity a run supports (profiled likelihood), or none
 weighted_least_squares, scaled_singular_values   the solver and the excitation measure
 identify_viscous_temperature -> ViscousTemperatureFit   k_v per actuator from the run's drive temperatures
 baseline_from_identification, unseen_prior_std   the live tracker's Baseline
@@ -101,6 +102,7 @@ T (N, n) drive temperatures [K]; T_ref (n,) [K]; k_v (n,) viscous temperature co
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -618,6 +620,109 @@ def identify_run(
 
 
 @dataclass(frozen=True, slots=True)
+class StribeckSearch:
+    """The Stribeck velocity a run supports (:func:`identify_stribeck_velocity`)."""
+
+    velocity: float | None  # v_st chosen [rad/s | m/s], or None: the run does not support the term
+    candidates: Array  # (C,) v_st tried [rad/s | m/s], ascending
+    cost: Array  # (C,) J(v_st) = sum_i ln sigma_i^2 of each fit (lower fits better) [-]
+    cost_without: float  # J of the fit without the Stribeck term
+    statistic: float  # -2 ln(likelihood ratio) = K (J_without - J(v_best)) [-]
+    threshold: float  # chi-square quantile the statistic had to pass [-]
+    identification: Identification  # the fit the choice leads to (with the term at ``velocity``, or without)
+    velocity_unit: str = "rad/s"
+
+    @property
+    def reason(self) -> str:
+        """The choice in words."""
+        if self.velocity is not None:
+            return (
+                f"Stribeck term at v_st = {self.velocity:.3g} {self.velocity_unit} (likelihood-ratio statistic "
+                f"{self.statistic:.3g} "
+                f"> {self.threshold:.3g})"
+            )
+        if not self.statistic > self.threshold:
+            return (
+                f"no Stribeck term: it does not fit the run better (likelihood-ratio statistic "
+                f"{self.statistic:.3g} <= {self.threshold:.3g})"
+            )
+        return "no Stribeck term: the run does not separate its level from the Coulomb friction"
+
+
+def identify_stribeck_velocity(
+    mechanism: Mechanism,
+    run: ConditionedRun,
+    settings: CommissioningSettings,
+    *,
+    payload: str = "auto",
+    nominal_payload: Array | None = None,
+    low: float | None = None,
+    high: float | None = None,
+    grid: int = 9,
+    significance: float = 1e-3,
+) -> StribeckSearch:
+    """Choose the Stribeck velocity v_st of the friction column ``F_st s(qd) exp(-(qd / v_st)^2)`` from a run.
+
+    The model is linear in every parameter but v_st, so v_st is found by profiling: for each v_st the run is
+    identified by :func:`identify_run` and scored by the concentrated Gaussian log-likelihood with one noise
+    variance per actuator, ``ln L = -K/2 sum_i ln sigma_i^2 + const``, i.e. the cost ``J = sum_i ln sigma_i^2``
+    (e.g. Ljung, "System Identification: Theory for the User", 2nd ed., 1999, sec. 7.4, from memory). The
+    candidates are ``grid`` velocities spaced evenly in log between ``low`` (default 2 v_s) and ``high`` (default
+    200 v_s); the best one is refined by a bounded scalar search (``scipy.optimize.minimize_scalar``) on ln v_st
+    between its neighbours. The term is kept only if the likelihood-ratio statistic ``K (J_without - J_best)``
+    exceeds the chi-square quantile ``1 - significance`` with n + 1 degrees of freedom (n levels and v_st;
+    Wilks' theorem) and the run saw every Stribeck level (none of them unseen). Residuals correlated in time
+    make the statistic too large, so the test is lenient towards the term; the excitation check is what keeps
+    an unseparable term out.
+    """
+    v_s = settings.smooth_velocity
+    lo = 2.0 * v_s if low is None else float(low)
+    hi = 200.0 * v_s if high is None else float(high)
+    if not (0.0 < lo < hi and np.isfinite(hi)) or grid < 3:
+        raise ConfigurationError(f"Stribeck search: need 0 < low < high and grid >= 3, got {lo}, {hi}, {grid}")
+    n = int(mechanism.n_actuators)
+
+    def fit(v_st: float | None) -> Identification:
+        return identify_run(
+            mechanism,
+            run,
+            dataclasses.replace(settings, stribeck_velocity=v_st),
+            payload=payload,
+            nominal_payload=nominal_payload,
+        )
+
+    def cost(ident: Identification) -> float:
+        return float(np.sum(np.log(ident.noise_std**2)))
+
+    without = fit(None)
+    candidates = np.geomspace(lo, hi, grid)
+    fits = {float(v): fit(float(v)) for v in candidates}
+    costs = np.array([cost(fits[float(v)]) for v in candidates])
+    j = int(np.argmin(costs))
+    bracket = (np.log(candidates[max(j - 1, 0)]), np.log(candidates[min(j + 1, grid - 1)]))
+    refined = scipy.optimize.minimize_scalar(
+        lambda log_v: cost(fit(float(np.exp(log_v)))), bounds=bracket, method="bounded", options={"xatol": 0.02}
+    )
+    best_v = float(np.exp(refined.x)) if refined.fun < costs[j] else float(candidates[j])
+    best = fits.get(best_v) or fit(best_v)
+    statistic = float(best.n_samples * (cost(without) - cost(best)))
+    threshold = float(scipy.stats.chi2.isf(significance, n + 1))
+    stribeck = [k for k, name in enumerate(best.parameter_names) if name.startswith("stribeck_")]
+    seen = bool(best.identified[stribeck].all())
+    keep = statistic > threshold and seen
+    return StribeckSearch(
+        velocity=best_v if keep else None,
+        candidates=candidates,
+        cost=costs,
+        cost_without=cost(without),
+        statistic=statistic,
+        threshold=threshold,
+        identification=best if keep else without,
+        velocity_unit=settings.velocity_unit,
+    )
+
+
+@dataclass(frozen=True, slots=True)
 class _Fit:
     theta: Array
     cov: Array
@@ -1028,8 +1133,12 @@ def baseline_from_identification(
     unseen_std: Array,
     nominal_friction: Array | None = None,
     nominal_work_piece_kg: float | None = None,
+    stribeck_velocity: float | None = None,
 ) -> Baseline:
     """The live tracker's starting point from an identification.
+
+    ``stribeck_velocity`` is the v_st the identification was made with (None: no Stribeck term); the baseline
+    carries it, so that the live tracker follows the same friction form.
 
     A friction parameter the run could not see starts from its nominal value (``nominal_friction`` (k n,), if
     given; else the estimate) with the wide, uncorrelated std ``unseen_std[j]`` ((k n,), e.g. from
@@ -1073,6 +1182,7 @@ def baseline_from_identification(
         tool_mass_kg=tool,
         work_piece_mass_kg=work,
         payload_parameters=payload,
+        stribeck_velocity=stribeck_velocity,
     )
 
 

@@ -151,10 +151,21 @@ class NominalFriction:
     # (n,) declared k of ``F_v(T) = F_v(T_ref) exp(-k (T - T_ref))`` [1/K], or None (not declared)
     viscous_temperature_coefficient_per_k: Array | None = None
     viscous_reference_temperature_k: float | None = None  # T at which ``viscous`` holds [K], or None
+    # v_st of the Stribeck term ``F_st s(qd) exp(-(qd / v_st)^2)`` [rad/s | m/s], or None: no Stribeck term
+    stribeck_velocity: float | None = None
+    stribeck: Array | None = None  # (n,) F_st = F_s - F_c, the breakaway excess [N m | N]; with stribeck_velocity
+
+    @property
+    def per_actuator(self) -> int:
+        """k: 3 (Coulomb, viscous, offset), or 4 with the Stribeck term."""
+        return 3 if self.stribeck_velocity is None else 4
 
     def parameters(self) -> Array:
-        """theta_f (3 n,) = ``[F_c1, F_v1, o_1, F_c2, ...]``."""
-        return np.stack([self.coulomb, self.viscous, self.offset], axis=1).reshape(-1)
+        """theta_f (k n,) = ``[F_c1, F_v1, o_1(, F_st1), F_c2, ...]``."""
+        columns = [self.coulomb, self.viscous, self.offset]
+        if self.stribeck_velocity is not None:
+            columns.append(self.stribeck if self.stribeck is not None else np.zeros_like(self.coulomb))
+        return np.stack(columns, axis=1).reshape(-1)
 
 
 @dataclass(frozen=True, slots=True)
@@ -552,6 +563,11 @@ def _parse_friction(
         if not lo <= t_ref <= hi:
             hint = " (it looks like degrees Celsius; this schema takes kelvins)" if -60.0 <= t_ref < lo else ""
             t.fail(t_key, f"must lie in [{lo:g}, {hi:g}] K, got {t_ref:g}{hint}")
+    v_key, st_key = f"stribeck_velocity_{velocity_unit}", f"stribeck_{effort_unit}"
+    v_st = t.number(v_key, positive=True) if t.has(v_key) else None
+    if t.has(st_key) and v_st is None:
+        t.fail(st_key, f"a Stribeck level needs its velocity: declare {v_key} as well")
+    f_st = None if v_st is None else t.per_actuator(st_key, n, non_negative=True, default=0.0)
     friction = NominalFriction(
         coulomb=t.per_actuator(f"coulomb_{effort_unit}", n, non_negative=True),
         viscous=t.per_actuator(f"viscous_{viscous_unit}", n, non_negative=True),
@@ -559,6 +575,8 @@ def _parse_friction(
         smooth_velocity=t.number(f"smooth_velocity_{velocity_unit}", positive=True, default=default_v_s),
         viscous_temperature_coefficient_per_k=k_v,
         viscous_reference_temperature_k=t_ref,
+        stribeck_velocity=v_st,
+        stribeck=f_st,
     )
     t.finish()
     return friction
