@@ -1,6 +1,6 @@
 """False alarms over a long stretch of normal production: the scoreboard's first row, at 24 simulated hours.
 
-Run as ``python -m benchmarks.false_alarms [--hours H] [--window-s S] [--windows-per-run N]`` (about an hour
+Run as ``python -m benchmarks.false_alarms [--hours H] [--window-s S] [--windows-per-run N] [--seed N]`` (about an hour
 per 24 simulated hours on one core: the simulator and the monitor share it about evenly).
 
 The scoreboard's ``production_cycling`` scenario (the example delta, ambient 24 +- 10 degC daily, no faults at
@@ -57,6 +57,9 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--windows-per-run", type=int, default=64, help="windows simulated side by side")
     parser.add_argument("--progress-every", type=int, default=500, help="print a progress line every N windows")
     parser.add_argument("--stop-after", type=int, help="stop after this many windows (to look at one stretch)")
+    parser.add_argument(
+        "--seed", type=int, help="seed of the production stream (default: the scenario's; another seed is a new sample)"
+    )
     args = parser.parse_args(argv)
     os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
     clock = time.perf_counter()
@@ -72,6 +75,8 @@ def main(argv: list[str] | None = None) -> None:
     del healthy
 
     base = scenario("production_cycling", 1.0)
+    if args.seed is not None:
+        base = dataclasses.replace(base, seed=args.seed)
     windows = max(1, round(args.hours * 3600.0 / args.window_s))
     sampling = dataclasses.replace(
         base.sampling, windows=windows, window_s=args.window_s, spacing="even", windows_per_run=args.windows_per_run
