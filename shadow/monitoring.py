@@ -286,6 +286,7 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         n_temperatures=n,
         reported_effort=reported,
         command_period_s=command_period,
+        identifiability_memory_s=60.0,  # a parameter counts as seen when the last minute or so of motion pins it
     )
     settings = MonitorSettings(
         tracker=tracker, sample_rate_hz=sample_rate_hz, wear_reference_speed=1.0 if delta else 0.05
@@ -794,7 +795,9 @@ class RobotMonitor:
         """A payload change event, and the filter told: its estimate moves by the step, with the step's uncertainty."""
         state = self.tracker.filter.state
         half = 0.5 * (step.interval_after_kg[1] - step.interval_after_kg[0])
-        self.tracker.filter.state = reset_parameter(state, index, float(state.x[index]) + step.step_kg, half / 1.96)
+        std = half / 1.96
+        self.tracker.filter.state = reset_parameter(state, index, float(state.x[index]) + step.step_kg, std)
+        self.tracker.reset_information(index, 1.0 / std**2)  # what the step's stretches measured, no more
         tool = self.description.tool
         if part == "tool":
             self._piece_steps.forget_since(step.onset_time_s)  # transfers since then carried the tool's step too

@@ -81,6 +81,11 @@ class TrackerSettings:
         (the last three set the effort's instant, :attr:`effort_delay_s`)
     noise_time_constant_s : tau_R of the adaptive measurement noise [s], or None to keep R fixed
     n_temperatures : width of the optional temperature channel (0: none)
+    identifiability_memory_s : tau_I [s] of the identifiability flag's memory, or None: each output is judged on
+        its own batch. With it, the information the batches added about parameter i,
+        ``I_i <- exp(-T / tau_I) I_i + (1 / P+_ii - 1 / P-_ii)`` (T: time since the previous update), is
+        accumulated, and the parameter counts as identifiable while ``I_i >= 1 / resolution_i^2``: the motion
+        of about the last tau_I seconds pins it to its resolution, though no single output period does
     """
 
     half_window: int
@@ -99,6 +104,7 @@ class TrackerSettings:
     n_temperatures: int = 0
     reported_effort: tuple[ReportedEffort, ...] | None = None
     command_period_s: Array | None = None
+    identifiability_memory_s: float | None = None
 
     def effort_delay_s(self, n_actuators: int) -> Array:
         """d (n,) [s]: the reported effort at t_k belongs to the motion at t_k - d (see the module docstring)."""
@@ -116,7 +122,7 @@ class TrackerOutput:
     parameter_names: tuple[str, ...]
     x: Array  # (p_x,) estimate after the batch
     std: Array  # (p_x,) its standard deviation
-    identifiable: NDArray[np.bool_]  # (p_x,) the batch excited the parameter
+    identifiable: NDArray[np.bool_]  # (p_x,) the motion pins the parameter (see identifiability_memory_s)
     out_of_bounds: NDArray[np.bool_]  # (p_x,) estimate outside its physical range (never clamped)
     prior_residual: Array  # (K, n) z - H x before the batch (innovations) [N m | N]
     posterior_residual: Array  # (K, n) z - H x after the batch
@@ -192,6 +198,9 @@ class PayloadFrictionTracker:
             raise ConfigurationError(f"payload_prior_std: must be > 0, got {v['payload_prior_std']}")
         if not settings.output_period_s > 0:
             raise ConfigurationError(f"output_period_s: must be > 0, got {settings.output_period_s}")
+        memory = settings.identifiability_memory_s
+        if memory is not None and not (np.isfinite(memory) and memory > 0):
+            raise ConfigurationError(f"identifiability_memory_s: must be finite and > 0, or None; got {memory}")
         if settings.current_loop_bandwidth_hz is not None:
             f = np.asarray(settings.current_loop_bandwidth_hz, dtype=float)
             if f.shape != (n,) or np.any(~(f > 0)) or not np.all(np.isfinite(f)):
@@ -216,6 +225,7 @@ class PayloadFrictionTracker:
             x=np.concatenate([theta_p0, baseline.friction_parameters]), P=P0, R=np.diag(baseline.noise_std**2)
         )
         self.filter = BatchKalmanFilter(model, state)
+        self._information = np.zeros(p + k * n)  # I (p_x,) accumulated information [1/unit^2]
         self._channels = {"effort": n, "gripping": 1, "temperature": int(settings.n_temperatures)}
         self.conditioner = Conditioner(
             n,
@@ -344,6 +354,12 @@ class PayloadFrictionTracker:
             duration = t[-1] - t[0]
         report = self.filter.step(H, z, float(duration))
         self._last_update_t = float(t[-1])
+        identifiable = report.identifiable
+        memory = self.settings.identifiability_memory_s
+        if memory is not None:  # I <- exp(-T / tau_I) I + gain; flagged while I >= 1 / resolution^2
+            gain = np.maximum(report.information_gain, 0.0)
+            self._information = np.exp(-float(duration) / memory) * self._information + gain
+            identifiable = self._information >= 1.0 / self.filter.model.identifiability_std**2
         temp = s["temperature"]
         if temp.shape[1] and np.any(np.isfinite(temp)):
             finite = np.isfinite(temp)
@@ -359,7 +375,7 @@ class PayloadFrictionTracker:
             parameter_names=self.parameter_names,
             x=report.x,
             std=report.std,
-            identifiable=report.identifiable,
+            identifiable=identifiable,
             out_of_bounds=report.out_of_bounds,
             prior_residual=report.prior_residual,
             posterior_residual=report.posterior_residual,
@@ -384,6 +400,14 @@ class PayloadFrictionTracker:
         q, qd, qdd = (np.swapaxes(s[name].reshape(k, g, self.n_actuators), 0, 1) for name in _PENDING_MOTION)
         return EffortMotion(self.conditioner.effort_delays_s, self.conditioner.effort_group, q, qd, qdd)
 
+    def reset_information(self, index: int, information: float = 0.0) -> None:
+        """Start parameter ``index``'s accumulated information [1/unit^2] afresh (its value was reset, e.g. at a
+        payload step: what the earlier motion said about it no longer holds; ``information`` is what the reset
+        itself knows, 1 / std^2 of the new value)."""
+        if not information >= 0.0:
+            raise ConfigurationError(f"information: must be >= 0, got {information}")
+        self._information[index] = information
+
     # ------------------------------------------------------------------ state
     def save_state(self) -> dict[str, Array]:
         """Everything the tracker carries, as plain arrays (copies). :meth:`restore_state` resumes bit-identically."""
@@ -396,6 +420,7 @@ class PayloadFrictionTracker:
         state["pending_restarts/gap_s"] = np.array([r.gap_s for _, r in pr], dtype=float)
         state["pending_restarts/reason"] = np.array([_REASONS.index(r.reason) for _, r in pr], dtype=np.int64)
         state["last_update_t"] = np.array(self._last_update_t)
+        state["information"] = self._information.copy()
         return state
 
     def restore_state(self, state: Mapping[str, Array]) -> None:
@@ -436,3 +461,9 @@ class PayloadFrictionTracker:
             )
         ]
         self._last_update_t = float(state["last_update_t"])
+        if "information" in state:  # states saved before the flag had a memory start from none
+            info = np.asarray(state["information"], dtype=float)
+            expect_shape("tracker state information", info, self._information.shape)
+            self._information = info.copy()
+        else:
+            self._information = np.zeros_like(self._information)

@@ -364,3 +364,69 @@ def test_baseline_round_trip_and_errors() -> None:
         Baseline.from_dict({**b.to_dict(), "friction_covariance": (-np.eye(6)).tolist()})
     with pytest.raises(ConfigurationError, match="tool_mass_kg: must be >= 0"):
         Baseline.from_dict({**b.to_dict(), "tool_mass_kg": -1.0})
+
+
+def accumulated_information(outputs: list[TrackerOutput], tracker: PayloadFrictionTracker, p0_diag, memory_s):
+    """I_k per output, recomputed from the outputs' own std: P-_ii = P+_(k-1),ii + q_i T_k (random walk, diagonal
+    Q), gain = 1 / P+_ii - 1 / P-_ii, I_k = exp(-T_k / tau) I_(k-1) + max(gain, 0) (the settings' docstring)."""
+    q_rate = tracker.filter.model.q_rate
+    prev_p, prev_t, info, out = np.asarray(p0_diag, dtype=float), None, np.zeros_like(q_rate), []
+    for o in outputs:
+        span = o.t[-1] - (o.t[0] if prev_t is None else prev_t)
+        p_minus = prev_p + q_rate * span
+        p_plus = o.std**2
+        info = np.exp(-span / memory_s) * info + np.maximum(1.0 / p_plus - 1.0 / p_minus, 0.0)
+        out.append(info.copy())
+        prev_p, prev_t = p_plus, o.t[-1]
+    return out
+
+
+def test_identifiability_memory_flags_what_several_outputs_pin(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t_all, q_all, effort_all, grip_all = delta_stream(delta, rng, 12.0)
+    t, q, effort, grip = t_all[:9000], q_all[:9000], effort_all[:9000], grip_all[:9000]
+    baseline = delta_baseline()
+    plain = PayloadFrictionTracker(delta, delta_settings(), baseline)
+    per_batch = plain.process(t, q, effort, tool_gripping=grip)
+    p0 = np.concatenate([[1.0, 1.0], np.diag(baseline.friction_covariance)])  # prior variances (payload std 1)
+    # per-output information about the tool mass (a memory of 1 ns keeps nothing but the output's own)
+    gains = [i[0] for i in accumulated_information(per_batch, plain, p0, 1e-9)]
+    resolution = np.array([1.0 / np.sqrt(2.5 * max(gains)), 0.05])  # more than any single output gives
+    settings = delta_settings(payload_resolution=resolution, identifiability_memory_s=5.0)
+    tracker = PayloadFrictionTracker(delta, settings, baseline)
+    outputs = tracker.process(t, q, effort, tool_gripping=grip)
+    info = accumulated_information(outputs, tracker, p0, 5.0)
+    for o, i in zip(outputs, info, strict=True):
+        assert_array_equal(o.identifiable, i >= 1.0 / tracker.filter.model.identifiability_std**2)
+    flags = [bool(o.identifiable[0]) for o in outputs]
+    assert not flags[0] and flags[-1]  # the tool mass: not pinned by the first output, pinned by several
+    without = PayloadFrictionTracker(delta, dataclasses.replace(settings, identifiability_memory_s=None), baseline)
+    assert not any(o.identifiable[0] for o in without.process(t, q, effort, tool_gripping=grip))  # per batch: never
+    # what no output excites stays unflagged however long the memory: the work piece without a gripping signal
+    blind = PayloadFrictionTracker(delta, delta_settings(identifiability_memory_s=1e6), baseline)
+    assert not any(o.identifiable[1] for o in blind.process(t, q, effort))
+    # a reset (e.g. a payload step) starts the parameter's information afresh
+    tracker.reset_information(0)
+    more = tracker.process(t_all[9000:], q_all[9000:], effort_all[9000:], tool_gripping=grip_all[9000:])
+    assert len(more) == 3 and not more[0].identifiable[0]  # one output's information alone, again
+    with pytest.raises(ConfigurationError, match="identifiability_memory_s"):
+        PayloadFrictionTracker(delta, delta_settings(identifiability_memory_s=0.0), baseline)
+    with pytest.raises(ConfigurationError, match="information: must be >= 0"):
+        tracker.reset_information(0, -1.0)
+
+
+def test_identifiability_memory_survives_save_and_restore(delta: DeltaModel, rng: np.random.Generator) -> None:
+    t, q, effort, grip = delta_stream(delta, rng, 4.0)
+    settings = delta_settings(identifiability_memory_s=3.0, payload_resolution=np.array([0.001, 0.05]))
+    a = PayloadFrictionTracker(delta, settings, delta_baseline())
+    a.process(t[:2600], q[:2600], effort[:2600], tool_gripping=grip[:2600])
+    saved = a.save_state()
+    b = PayloadFrictionTracker(delta, settings, delta_baseline())
+    b.restore_state({k: np.array(v, copy=True) for k, v in saved.items()})
+    rest = (t[2600:], q[2600:], effort[2600:])
+    outputs_equal(
+        b.process(*rest, tool_gripping=grip[2600:]) + b.flush(), a.process(*rest, tool_gripping=grip[2600:]) + a.flush()
+    )
+    old = {k: v for k, v in saved.items() if k != "information"}  # a state saved before the memory existed
+    c = PayloadFrictionTracker(delta, settings, delta_baseline())
+    c.restore_state(old)
+    assert_array_equal(c.save_state()["information"], np.zeros_like(saved["information"]))
