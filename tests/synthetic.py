@@ -85,12 +85,15 @@ def delta_stream(
     tau0 = m.inverse_dynamics(q, qd, qdd, np.zeros(1))
     tau1 = m.inverse_dynamics(q, qd, qdd, np.ones(1))
     tau = tau0 + (tau1 - tau0) * theta[:, None]  # ID is affine in the payload mass
-    theta_f = np.tile([1.5, 0.3, 0.1], 3)
+    v_st = d.friction.stribeck_velocity if d.friction else None
+    # in the description's friction form (Coulomb, viscous, offset(, Stribeck level 0: no breakaway hump))
+    theta_f = np.tile([1.5, 0.3, 0.1] + ([] if v_st is None else [0.0]), 3)
+    k = theta_f.shape[0] // 3
     smooth = d.friction.smooth_velocity if d.friction else 0.02
-    tau = tau + friction_effort(qd, theta_f, smooth_velocity=smooth)
+    tau = tau + friction_effort(qd, theta_f, smooth_velocity=smooth, stribeck_velocity=v_st)
     if coulomb_ramp is not None:  # the extra Coulomb friction of a wearing actuator: (f - 1) F_c t / T tanh(qd / v_s)
         i, factor = coulomb_ramp
-        tau[:, i] += (factor - 1.0) * theta_f[3 * i] * (t_rel / t_rel[-1]) * np.tanh(qd[:, i] / smooth)
+        tau[:, i] += (factor - 1.0) * theta_f[k * i] * (t_rel / t_rel[-1]) * np.tanh(qd[:, i] / smooth)
     force = np.zeros((t_rel.shape[0], 3))
     if impact_at_s is not None:
         k = (t_rel >= impact_at_s) & (t_rel < impact_at_s + impact_duration_s)

@@ -182,7 +182,10 @@ def test_rising_friction_raises_wear_levels_on_its_own_actuator_only() -> None:
 
     stream = delta_stream(np.random.default_rng(31), duration_s=40.0, coulomb_ramp=(1, 1.8))
     n_f = stream.friction.shape[0]
-    baseline = Baseline(stream.friction, np.diag(np.full(n_f, 0.05**2)), np.full(3, 0.36), 0.35, 0.25)
+    v_st = stream.description.friction.stribeck_velocity  # type: ignore[union-attr]  # the stream's friction form
+    baseline = Baseline(
+        stream.friction, np.diag(np.full(n_f, 0.05**2)), np.full(3, 0.36), 0.35, 0.25, stribeck_velocity=v_st
+    )
     s = dataclasses.replace(default_settings(stream.description), wear_window_s=2.0)
     res = run(RobotMonitor(ROBOT, stream.description, baseline, s), stream.batches("p4", 100))
     wear = [e for e in res.events if e["kind"] == "wear"]

@@ -34,10 +34,10 @@ def cycle_windows(n_windows: int, seed: int) -> tuple[list, np.ndarray, np.ndarr
     theta_f = np.zeros(9)
     for w, T in enumerate(temps):
         s = delta_stream(np.random.default_rng([seed, w]), duration_s=6.0)
-        theta_f = s.friction
+        theta_f = s.friction.reshape(3, -1)[:, :3].reshape(-1)  # Coulomb, viscous, offset (its Stribeck level is 0)
         t_rel = s.t - EPOCH_S
         qd = 0.25 * W * np.cos(W * t_rel[:, None])
-        b = s.friction[1::3]
+        b = theta_f[1::3]
         effort = s.effort + (b * np.exp(-K_TRUE * (T - T_REF_K)) - b) * qd  # b(T) qd in place of b qd
         s = dataclasses.replace(s, t=s.t + w * 0.25 * 86400.0, effort=effort)
         for batch in s.batches("p4", 100, first_seq=len(batches)):

@@ -355,7 +355,12 @@ def compute_efforts(
         if description.friction is None:
             raise DescriptionError(f"{description.source}: friction: --friction needs a [friction] section")
         nominal = description.friction
-        tau = tau + friction_effort(qd, nominal.parameters(), smooth_velocity=nominal.smooth_velocity)
+        tau = tau + friction_effort(
+            qd,
+            nominal.parameters(),
+            smooth_velocity=nominal.smooth_velocity,
+            stribeck_velocity=nominal.stribeck_velocity,
+        )
     return tau
 
 

@@ -117,7 +117,11 @@ def test_good_run_writes_a_baseline_the_tracker_accepts(
     assert doc["run"]["messages"] == 12 and doc["run"]["start_utc"].startswith("2027-01-15T08:00:00")
     # truth: the injected values
     assert_allclose([baseline.tool_mass_kg, baseline.work_piece_mass_kg], [TOOL_KG, WORK_KG], rtol=0.05)
-    assert_allclose(baseline.friction_parameters, THETA_F, rtol=0.1, atol=0.01)
+    # the example delta declares a Stribeck term: four parameters per actuator, the injected friction has no hump
+    assert baseline.stribeck_velocity == 0.04 and doc["method"]["stribeck_velocity"] == 0.04
+    per = baseline.friction_parameters.reshape(3, 4)
+    assert_allclose(per[:, :3].reshape(-1), THETA_F, rtol=0.1, atol=0.01)
+    assert np.all(np.abs(per[:, 3]) < 0.05)  # no breakaway excess in the data: its level near 0 N m
     assert_allclose(baseline.noise_std, SIGMA_NM, rtol=0.15)
     est = {e["name"]: e for e in doc["estimates"]}
     assert (
@@ -134,9 +138,10 @@ def test_good_run_writes_a_baseline_the_tracker_accepts(
         smooth_velocity=V_S,
         payload_prior_std=np.array([0.1, 0.1]),
         payload_walk_std=np.array([1e-3, 1e-3]),
-        friction_walk_std=np.full(3, 1e-3),
+        friction_walk_std=np.full(4, 1e-3),
         payload_resolution=np.array([0.05, 0.05]),
-        friction_resolution=np.full(3, 0.05),
+        friction_resolution=np.full(4, 0.05),
+        stribeck_velocity=baseline.stribeck_velocity,  # the form the baseline fixes
     )
     tracker = PayloadFrictionTracker(model, settings, baseline)  # accepts it
     t, q, effort, grip = delta_efforts(np.random.default_rng(7), 2500)
@@ -160,7 +165,7 @@ def test_gain_run(tmp_path: Path, rng: np.random.Generator, capsys: pytest.Captu
     assert g["test_mass_kg"] == 2.0 and g["applied"] is True
     assert np.all(np.array(g["ci_low"]) <= gain) and np.all(gain <= np.array(g["ci_high"]))
     assert_allclose(g["gain"], gain, rtol=0.003)
-    assert_allclose(doc["friction_parameters"], THETA_F, rtol=0.1, atol=0.01)
+    assert_allclose(np.reshape(doc["friction_parameters"], (3, 4))[:, :3].reshape(-1), THETA_F, rtol=0.1, atol=0.01)
     assert_allclose(doc["noise_std"], SIGMA_NM, rtol=0.15)
 
 
@@ -356,7 +361,7 @@ def test_closed_loop_simulator_run(tmp_path: Path, capsys: pytest.CaptureFixture
         f"noise {np.round(baseline.noise_std, 3)} (sensor {sensors.effort_noise_std[0]:.3f})\n"
     )
     assert_allclose([baseline.tool_mass_kg, baseline.work_piece_mass_kg], [0.35, 0.25], rtol=0.03)
-    coulomb = baseline.friction_parameters[0::3]
+    coulomb = np.array([est[f"coulomb_{i + 1}"]["value"] for i in range(3)])
     assert np.all((coulomb > 0.6) & (coulomb < 1.0))  # between the plant's Coulomb 0.8 and static 1.0 N m, or near
     assert np.all(baseline.noise_std > sensors.effort_noise_std)  # model mismatch adds to the sensor noise
 

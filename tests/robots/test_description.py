@@ -55,7 +55,8 @@ def test_delta_example_maps_onto_parameters() -> None:
     assert_allclose(d.tool.payload_parameters(gripping=True), [0.6], rtol=1e-15)
     assert_allclose(d.tool.payload_parameters(gripping=False), [0.35], rtol=1e-15)
     assert d.friction is not None
-    assert_allclose(d.friction.parameters(), np.tile([0.8, 0.15, 0.0], 3), rtol=0)
+    assert_allclose(d.friction.parameters(), np.tile([0.8, 0.15, 0.0, 0.15], 3), rtol=0)  # with a Stribeck level
+    assert d.friction.stribeck_velocity == 0.04
     assert isinstance(build_model(d), DeltaModel)
     assert d.source.endswith("delta_packaging.toml")
 
