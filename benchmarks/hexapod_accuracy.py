@@ -361,20 +361,6 @@ def empty_prior(description: RobotDescription) -> Baseline:
     return dataclasses.replace(nominal_baseline(description), payload_parameters=np.zeros(10))
 
 
-def without_stribeck(baseline: Baseline) -> Baseline:
-    """``baseline`` with the friction form cut to Coulomb, viscous and offset per actuator (no Stribeck term)."""
-    if baseline.stribeck_velocity is None:
-        return baseline
-    n = baseline.n_actuators
-    keep = (np.arange(4 * n) % 4) < 3
-    return dataclasses.replace(
-        baseline,
-        friction_parameters=baseline.friction_parameters[keep],
-        friction_covariance=baseline.friction_covariance[np.ix_(keep, keep)],
-        stribeck_velocity=None,
-    )
-
-
 # ------------------------------------------------------------------------------------------------ printing
 def _velocity_mm_s(baseline: Baseline) -> str:
     v = baseline.stribeck_velocity
@@ -473,11 +459,19 @@ def main(argv: list[str] | None = None) -> None:
     desc = example_hexapod()
     effects = FeedSettings().effects
     sim_start = time.perf_counter()
-    production = play(
-        held_fixture_windows(
-            desc, np.random.default_rng([args.seed, 1]), n_windows=args.windows, window_s=args.window_s, effects=effects
+
+    def production_stream(plant_effects: DemoEffects) -> Stream:  # the same seed: same path and noise
+        return play(
+            held_fixture_windows(
+                desc,
+                np.random.default_rng([args.seed, 1]),
+                n_windows=args.windows,
+                window_s=args.window_s,
+                effects=plant_effects,
+            )
         )
-    )
+
+    production = production_stream(effects)
     healthy = play(
         held_fixture_windows(
             desc,
@@ -511,7 +505,7 @@ def main(argv: list[str] | None = None) -> None:
         ("nominal baseline, empty-platform payload prior", empty_prior(desc)),
         (
             "nominal baseline without the Stribeck term (Coulomb, viscous, offset)",
-            without_stribeck(nominal_baseline(desc)),
+            nominal_baseline(desc).without_stribeck(),
         ),
     ]
     finals = {}
@@ -520,15 +514,7 @@ def main(argv: list[str] | None = None) -> None:
 
     if not args.no_diagnostic:
         smooth = dataclasses.replace(effects, static_to_coulomb=1.0)  # F_s = F_c: the estimator's friction form
-        same = play(
-            held_fixture_windows(
-                desc,
-                np.random.default_rng([args.seed, 1]),
-                n_windows=args.windows,
-                window_s=args.window_s,
-                effects=smooth,
-            )
-        )
+        same = production_stream(smooth)
         report_route(
             "diagnostic: the same production (same seed, path and noise) on a plant without the Stribeck hump "
             "(F_s = F_c), nominal baseline",

@@ -18,7 +18,7 @@ k_v      : (n,) viscous temperature coefficient of ``F_v(T) = F_v(T_ref) exp(-k_
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
@@ -176,6 +176,19 @@ class Baseline:
     @property
     def n_actuators(self) -> int:
         return int(self.noise_std.shape[0])
+
+    def without_stribeck(self) -> Baseline:
+        """The same baseline in the Coulomb, viscous, offset form: the Stribeck level of each actuator and its
+        rows and columns of the covariance left out (itself if it has no Stribeck term)."""
+        if self.stribeck_velocity is None:
+            return self
+        keep = (np.arange(self.friction_parameters.shape[0]) % 4) < 3
+        return replace(
+            self,
+            friction_parameters=self.friction_parameters[keep],
+            friction_covariance=self.friction_covariance[np.ix_(keep, keep)],
+            stribeck_velocity=None,
+        )
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-ready values (lists of floats); :meth:`from_dict` rebuilds an equal baseline."""

@@ -682,30 +682,32 @@ def identify_stribeck_velocity(
         raise ConfigurationError(f"Stribeck search: need 0 < low < high and grid >= 3, got {lo}, {hi}, {grid}")
     n = int(mechanism.n_actuators)
 
+    fits: dict[float | None, Identification] = {}  # every fit made, by v_st: none is solved twice
+
     def fit(v_st: float | None) -> Identification:
-        return identify_run(
-            mechanism,
-            run,
-            dataclasses.replace(settings, stribeck_velocity=v_st),
-            payload=payload,
-            nominal_payload=nominal_payload,
-        )
+        if v_st not in fits:
+            fits[v_st] = identify_run(
+                mechanism,
+                run,
+                dataclasses.replace(settings, stribeck_velocity=v_st),
+                payload=payload,
+                nominal_payload=nominal_payload,
+            )
+        return fits[v_st]
 
-    def cost(ident: Identification) -> float:
-        return float(np.sum(np.log(ident.noise_std**2)))
+    def cost(v_st: float | None) -> float:
+        return float(np.sum(np.log(fit(v_st).noise_std ** 2)))
 
-    without = fit(None)
     candidates = np.geomspace(lo, hi, grid)
-    fits = {float(v): fit(float(v)) for v in candidates}
-    costs = np.array([cost(fits[float(v)]) for v in candidates])
+    costs = np.array([cost(float(v)) for v in candidates])
     j = int(np.argmin(costs))
     bracket = (np.log(candidates[max(j - 1, 0)]), np.log(candidates[min(j + 1, grid - 1)]))
     refined = scipy.optimize.minimize_scalar(
-        lambda log_v: cost(fit(float(np.exp(log_v)))), bounds=bracket, method="bounded", options={"xatol": 0.02}
+        lambda log_v: cost(float(np.exp(log_v))), bounds=bracket, method="bounded", options={"xatol": 0.02}
     )
     best_v = float(np.exp(refined.x)) if refined.fun < costs[j] else float(candidates[j])
-    best = fits.get(best_v) or fit(best_v)
-    statistic = float(best.n_samples * (cost(without) - cost(best)))
+    best, without = fit(best_v), fit(None)
+    statistic = float(best.n_samples * (cost(None) - cost(best_v)))
     threshold = float(scipy.stats.chi2.isf(significance, n + 1))
     stribeck = [k for k, name in enumerate(best.parameter_names) if name.startswith("stribeck_")]
     seen = bool(best.identified[stribeck].all())
@@ -714,7 +716,7 @@ def identify_stribeck_velocity(
         velocity=best_v if keep else None,
         candidates=candidates,
         cost=costs,
-        cost_without=cost(without),
+        cost_without=cost(None),
         statistic=statistic,
         threshold=threshold,
         identification=best if keep else without,

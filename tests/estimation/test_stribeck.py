@@ -3,8 +3,6 @@ carried by the baseline, followed by the live monitor."""
 
 from __future__ import annotations
 
-import dataclasses
-
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
@@ -162,14 +160,10 @@ def test_the_monitor_follows_the_baselines_friction_form() -> None:
     names = monitor.tracker.parameter_names
     assert "stribeck_6" in names and monitor.tracker.friction_per_actuator == 4
     # a baseline without the term (e.g. commissioned with --stribeck-velocity none) wins over the description
-    n = hexapod.n_actuators
-    keep = (np.arange(4 * n) % 4) < 3
-    plain = dataclasses.replace(
-        nominal,
-        friction_parameters=nominal.friction_parameters[keep],
-        friction_covariance=nominal.friction_covariance[np.ix_(keep, keep)],
-        stribeck_velocity=None,
-    )
+    plain = nominal.without_stribeck()
+    assert plain.friction_parameters.shape == (3 * hexapod.n_actuators,) and plain.stribeck_velocity is None
+    assert_allclose(plain.friction_parameters, nominal.friction_parameters.reshape(-1, 4)[:, :3].reshape(-1), rtol=0)
+    assert plain.without_stribeck() is plain
     monitor = RobotMonitor("h", hexapod, plain)
     assert not any(p.startswith("stribeck_") for p in monitor.tracker.parameter_names)
     assert monitor.settings.tracker.friction_walk_std.shape == (3,)
