@@ -18,13 +18,14 @@ analysis and the tests all run exactly the same code. Per batch of samples:
    ``min_duration_s``, on at most ``contact_max_fraction`` of it) is not learnt from: the filter goes back to
    its state before the output (at most ``contact_hold_outputs`` outputs in a row), so one impact is one event
    and does not leave its force in the friction and payload estimates;
-5. payload faults (delta): the carried mass of every transfer (a stretch with the tool gripping), estimated from
-   that transfer alone with the filter's tool mass and friction taken off, checked against the work piece the
+5. payload faults (the delta's work piece, the hexapod's declared part): the carried mass of every transfer (a
+   stretch with the tool gripping), estimated from that transfer alone with the filter's tool mass (fixture
+   parameters) and friction taken off, along the work piece's column ``Y_p w``, checked against the work piece the
    description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance
    by more than 3 times the transfer mass's std combined with the transfer-to-transfer scatter); the observer
    sees a wrong carried mass as an external effort over the transfer, so collisions a transfer's mass explains
    are not left out of its weighing (only contacts are) and are folded into its payload fault;
-   payload changes (delta): the mass of every single-piece transfer, and the tool's own mass weighed on every
+   payload changes: the mass of every single-piece transfer, and (delta) the tool's own mass weighed on every
    empty move the same way, each go to a :class:`~shadow.detection.change.MassStepWatch` (two-sided CUSUM, GLR
    for the masses before and after); a confirmed step is a ``payload_change`` event, the filter is told
    (:func:`~shadow.estimation.kalman.reset_parameter`) and later transfers are judged against the new mass;
@@ -106,7 +107,7 @@ from shadow.estimation.kalman import FilterState, predict, reset_parameter
 from shadow.estimation.tracker import PayloadFrictionTracker, TrackerOutput, TrackerSettings
 from shadow.ingest.wire import PositionUnit, SampleBatch, encode_binary
 from shadow.robots.delta import DeltaModel
-from shadow.robots.description import RobotDescription, build_model
+from shadow.robots.description import DeltaTool, RobotDescription, build_model
 from shadow.robots.drives import declared_effort_timing, effort_from_current
 from shadow.robots.friction import friction_effort
 from shadow.robots.hexapod import HexapodModel
@@ -223,13 +224,13 @@ def nominal_baseline(description: RobotDescription) -> Baseline:
             reference_temperature_k=t_ref,
             stribeck_velocity=v_st,
         )
-    payload = tool.payload_parameters()
+    payload = tool.payload_parameters(gripping=False)  # the fixture; the declared part comes and goes
     return Baseline(
         friction_parameters=theta_f,
         friction_covariance=np.diag(std**2),
         noise_std=0.005 * rated,
         tool_mass_kg=float(payload[0]),
-        work_piece_mass_kg=0.0,
+        work_piece_mass_kg=tool.work_piece_mass_kg,
         payload_parameters=payload,
         reference_temperature_k=t_ref,
         stribeck_velocity=v_st,
@@ -268,6 +269,9 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         payload_prior = [2.0] + [0.2] * 3 + [0.05] * 6
         payload_walk = [1e-4] + [1e-5] * 3 + [1e-6] * 6
         payload_res = [0.05] + [0.01] * 3 + [0.005] * 6
+    work_piece = description.tool.work_piece_parameters_per_kg() if not delta else None
+    if work_piece is not None:  # the part clamped while gripping: its mass, as the delta's work piece
+        payload_prior, payload_walk, payload_res = [*payload_prior, 0.5], [*payload_walk, 1e-3], [*payload_res, 0.01]
     rated = float(np.mean([d.rated_effort for d in drives]))
     reported, command_period = declared_effort_timing(drives, 1.0 / sample_rate_hz)
     tracker = TrackerSettings(
@@ -287,6 +291,7 @@ def default_settings(description: RobotDescription, *, sample_rate_hz: float = 1
         reported_effort=reported,
         command_period_s=command_period,
         identifiability_memory_s=60.0,  # a parameter counts as seen when the last minute or so of motion pins it
+        work_piece_per_kg=work_piece,
     )
     settings = MonitorSettings(
         tracker=tracker, sample_rate_hz=sample_rate_hz, wear_reference_speed=1.0 if delta else 0.05
@@ -377,13 +382,19 @@ class RobotMonitor:
         self._transfer_open = False
         self._settled = False  # the tool mass has once been known well enough to judge transfers
         self._empty = np.zeros((0, 3 + self.n))  # open empty move (tool not gripping), same columns
-        if self.delta:
+        # a declared work piece the tool state switches: the delta's picked item, the hexapod's clamped part
+        self._work_index = self.tracker.work_piece_index
+        if self._work_index is not None:
             tool = description.tool
             self._expected_piece_kg = float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
             # the spread is floored at a quarter of the smallest step: a learning phase of very alike stretches
             # must not make the watch read every later gram as a change
-            piece_step = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
-            tool_step = self.settings.tool_step_fraction * float(tool.tool_mass_kg)  # type: ignore[union-attr]
+            # (a description without a tolerance gets 5 % of the piece; the smallest step is 1 g either way)
+            piece_kg = float(tool.work_piece_mass_kg)
+            piece_step = float(tool.work_piece_tolerance_kg) or 0.05 * piece_kg
+            piece_step = max(piece_step, 1e-3)
+            carrier_kg = float(tool.tool_mass_kg) if isinstance(tool, DeltaTool) else float(tool.payload.mass_kg)
+            tool_step = max(self.settings.tool_step_fraction * carrier_kg, 1e-3)
             self._piece_steps = MassStepWatch(MassStepSettings(min_step_kg=piece_step, spread_floor_kg=piece_step / 4))
             self._tool_steps = MassStepWatch(MassStepSettings(min_step_kg=tool_step, spread_floor_kg=tool_step / 4))
         # wear window being filled: [window index, outputs, sum F_c (n), sum b (n), sum T (n), T samples (n)]
@@ -465,10 +476,9 @@ class RobotMonitor:
         return s.evidence_before_s + s.evidence_after_s + 2 * s.tracker.output_period_s + 10.0
 
     def _theta_p(self, x: Array, gripping: Array) -> Array:
-        """Payload parameters per sample (K, p) from the filter state."""
-        if self.delta:
-            return (x[0] + x[1] * gripping)[:, None]  # tool + work piece while gripping
-        return np.broadcast_to(x[: self.tracker.n_payload], (gripping.shape[0], self.tracker.n_payload))
+        """Payload parameters per sample (K, p) from the filter state: the tool or fixture, plus the work piece while
+        gripping."""
+        return self.tracker.payload_per_sample(x, gripping)
 
     def _rows_for(self, out: TrackerOutput, results: StepResults, before: FilterState | None = None) -> None:
         """Every row of one output; ``before`` is the filter state before this output's update (None: unknown)."""
@@ -520,7 +530,7 @@ class RobotMonitor:
                     "detail": f"{restart.reason}: step of {restart.gap_s:.3f} s",
                 }
             )
-        if self.delta:
+        if self._work_index is not None:
             # judge transfers against the estimate from before this output, so that an odd transfer has not
             # yet pulled the tool mass and friction toward itself
             # settled once the tool mass has been known well; a pause in the stream widens the filter's std by its
@@ -644,14 +654,17 @@ class RobotMonitor:
         after a pause) only missed and double picks are judged, and neither the work piece nor the tool is weighed
         for a change."""
         n_pay = self.tracker.n_payload
+        j = self._work_index
+        assert j is not None and self.tracker.work_piece_per_kg is not None
         tau_f = friction_effort(
             out.qd,
             x[n_pay:],
             smooth_velocity=self.settings.tracker.smooth_velocity,
             stribeck_velocity=self.settings.tracker.stribeck_velocity,
         )
-        y = out.Y_payload[:, :, 0]  # (K, n) work-piece column
-        z = out.effort - out.tau_known - y * x[0] - tau_f  # what the carried mass must explain
+        y = out.Y_payload @ self.tracker.work_piece_per_kg  # (K, n) work-piece column Y_p w (delta: Y_p)
+        carried = np.einsum("kap,p->ka", out.Y_payload, x[:j])  # the tool's (fixture's) own effort
+        z = out.effort - out.tau_known - carried - tau_f  # what the carried mass must explain
         w = 1.0 / np.maximum(out.noise_std, 1e-12) ** 2  # W = diag(1 / sigma^2)
         terms = np.column_stack([out.t, np.sum(y * w * z, axis=1), np.sum(y * w * y, axis=1), np.abs(y)])
         grip = out.gripping > 0.5
@@ -663,12 +676,14 @@ class RobotMonitor:
                 self._transfer = np.concatenate([self._transfer, terms[a:e]])
                 if e < out.t.shape[0]:  # the tool let go at sample e: the transfer is complete
                     if judge and self._transfer.shape[0]:
-                        self._judge_transfer(self._transfer, float(x[1]), results, fine=fine)
+                        self._judge_transfer(self._transfer, float(x[j]), results, fine=fine)
                     self._transfer = np.zeros((0, 3 + self.n))
             else:  # an empty move: on it the same terms weigh the tool alone, as a deviation from x[0]
                 self._empty = np.concatenate([self._empty, terms[a:e]])
                 if e < out.t.shape[0]:  # the tool closed at sample e
-                    if judge and fine and self._empty.shape[0]:
+                    # (the delta's tool is one mass on the work piece's column; a hexapod fixture's ten parameters
+                    # are not weighed along its part's column)
+                    if judge and fine and self._empty.shape[0] and self.delta:
                         self._weigh_tool(self._empty, float(x[0]), results)
                     self._empty = np.zeros((0, 3 + self.n))
             state = not state if e < out.t.shape[0] else state
@@ -687,6 +702,7 @@ class RobotMonitor:
         collisions its mass explains are folded into it; larger ones stay collisions.
         """
         s = self.settings
+        j_work = self._work_index
         t = terms[:, 0]
         start, end = float(t[0]), float(t[-1])
         if end - start < s.min_transfer_s:
@@ -719,15 +735,18 @@ class RobotMonitor:
         if fine and s.missed_pick_ratio <= ratio <= s.double_pick_ratio and not self._tool_steps.alarmed:
             step = self._piece_steps.push(start, end, float(m), float(std))
             if step is not None:
-                self._report_mass_step("work_piece", step, 1, results)
+                self._report_mass_step("work_piece", step, j_work, results)
                 expected = self._expected_piece_kg  # this transfer is judged against the new mass too
                 ratio = m / expected if expected > 0 else np.inf
         if ratio < s.missed_pick_ratio:
-            fault, words = "missed_pick", "the tool closed but carried nothing"
+            fault = "missed_pick"
+            words = "the tool closed but carried nothing" if self.delta else "the fixture clamped but held no part"
         elif ratio > s.double_pick_ratio:
-            fault, words = "double_pick", "the tool carried about two work pieces"
+            fault = "double_pick"
+            words = "the tool carried about two work pieces" if self.delta else "the fixture held about twice the part"
         elif fine and abs(m - expected) > tolerance + 3.0 * self._transfer_scatter_kg(float(std)):
-            fault, words = "wrong_work_piece", "the carried mass is outside the work piece's tolerance"
+            fault = "wrong_work_piece"
+            words = "the carried mass is outside the " + ("work piece's" if self.delta else "part's") + " tolerance"
         else:
             return
         explained = [c for c in inside if self._explained_by_mass(c, m, assumed_kg, y_max, end - start)]
@@ -1192,8 +1211,9 @@ class RobotMonitor:
         horizon = t_end - 3600.0
         self._recent_collisions = [c for c in self._recent_collisions if c.end_time_s >= horizon]
         deviation = float("nan")
-        if self.delta and out.identifiable[1] and self.baseline.work_piece_mass_kg > 0:
-            deviation = (float(out.x[1]) - self.baseline.work_piece_mass_kg) / self.baseline.work_piece_mass_kg
+        j = self.tracker.work_piece_index
+        if j is not None and out.identifiable[j] and self.baseline.work_piece_mass_kg > 0:
+            deviation = (float(out.x[j]) - self.baseline.work_piece_mass_kg) / self.baseline.work_piece_mass_kg
         robot = robot_health(actuators, self._recent_collisions, deviation, 0.0, limits)
         results.health.append(_health_row(t_end, "robot", robot))
         for i, h in enumerate(actuators):
@@ -1229,7 +1249,7 @@ class RobotMonitor:
         state["last_seq"] = np.array(self._last_seq)
         state["transfer"] = self._transfer.copy()
         state["transfer_open"] = np.array(self._transfer_open)
-        if self.delta:
+        if self._work_index is not None:
             state["empty"] = self._empty.copy()
             state["expected_piece_kg"] = np.array(self._expected_piece_kg)
             state.update(self._piece_steps.save("piece_steps/"))
@@ -1289,7 +1309,7 @@ class RobotMonitor:
         self._last_seq = int(state["last_seq"])
         self._transfer = np.asarray(state["transfer"], dtype=float).reshape(-1, 3 + self.n).copy()
         self._transfer_open = bool(state["transfer_open"])
-        if self.delta:  # checkpoints written before the step watches existed lack these keys
+        if self._work_index is not None:  # checkpoints written before the step watches existed lack these keys
             self._empty = np.asarray(state.get("empty", np.zeros((0, 3 + self.n))), dtype=float).reshape(-1, 3 + self.n)
             described = float(self.description.tool.work_piece_mass_kg)  # type: ignore[union-attr]
             self._expected_piece_kg = float(state.get("expected_piece_kg", described))

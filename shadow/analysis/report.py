@@ -181,11 +181,8 @@ def validation_stretch(
     x = np.array([by_name[name] for name in monitor.tracker.parameter_names])
     p = monitor.tracker.n_payload
     tau_known, y_p, qd = regressor_at_efforts(monitor.model, cb.effort_motion)  # tau = tau_known + Y_p theta_p
-    if monitor.delta:  # theta_p = m_tool + m_work g per sample
-        theta = x[0] + x[1] * cb.channels["gripping"][:, 0]
-        tau = tau_known + y_p[:, :, 0] * theta[:, None]
-    else:
-        tau = tau_known + np.einsum("kap,p->ka", y_p, x[:p])
+    theta = monitor.tracker.payload_per_sample(x, cb.channels["gripping"][:, 0])  # tool + work piece while gripping
+    tau = tau_known + np.einsum("kap,kp->ka", y_p, theta)
     tau = tau + friction_effort(
         qd, x[p:], smooth_velocity=tracker.smooth_velocity, stribeck_velocity=tracker.stribeck_velocity
     )  # tau_c = ID + tau_f
@@ -457,7 +454,8 @@ def build_report(
     names = [f.parameter for f in finals]
     payload = names[: monitor.tracker.n_payload]
     if payload:
-        out.append(_trend_plot(analysis, [payload[:2]] if delta else [payload[:1]], ["payload"], ["kg"], t0))
+        masses = payload[:2] if delta else payload[:1] + [n for n in payload if n == "work_piece_mass"]
+        out.append(_trend_plot(analysis, [masses], ["payload"], ["kg"], t0))
     friction_kinds = [("coulomb", "Coulomb friction", unit), ("viscous", "viscous friction",
                       f"{unit} s/rad" if delta else "N s/m"), ("offset", "effort offset", unit)]  # fmt: skip
     groups = [[n for n in names if n.startswith(k + "_")] for k, _, _ in friction_kinds]

@@ -322,6 +322,7 @@ def _settings(args: argparse.Namespace, description: RobotDescription, sample_pe
         confidence=args.confidence,
         max_condition=args.max_condition,
         velocity_unit="rad/s" if rotary else "m/s",
+        work_piece_per_kg=None if rotary else description.tool.work_piece_parameters_per_kg(),
     )
 
 
@@ -411,8 +412,9 @@ def run(args: argparse.Namespace) -> int:
         description.n_actuators,
         unseen_std=unseen_prior_std(run_c, ident, settings),
         nominal_friction=nominal_friction,
-        nominal_work_piece_kg=getattr(description.tool, "work_piece_mass_kg", None),
+        nominal_work_piece_kg=description.tool.work_piece_mass_kg,
         stribeck_velocity=settings.stribeck_velocity,
+        work_piece_per_kg=settings.work_piece_per_kg,
     )
     temperature = identify_viscous_temperature(model, run_c, ident, settings)
     baseline = dataclasses.replace(
@@ -708,5 +710,11 @@ def report_lines(
         lines.append(
             f"described: tool {getattr(tool, 'tool_mass_kg', float('nan')):.4g} kg, work piece "
             f"{getattr(tool, 'work_piece_mass_kg', float('nan')):.4g} kg"
+        )
+    elif isinstance(description.tool, HexapodFixture):
+        fixture = description.tool
+        lines.append(
+            f"described: fixture {fixture.payload.mass_kg:.4g} kg, part {fixture.work_piece_mass_kg:.4g} kg"
+            + ("" if fixture.work_piece_mass_kg > 0 else " (none declared)")
         )
     return lines

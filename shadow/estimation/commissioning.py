@@ -162,6 +162,10 @@ class CommissioningSettings:
     temperature_iterations, temperature_tol_per_k : Gauss-Newton cap and step tolerance of the coefficient [1/K]
     temperature_min_speed : the coefficient is fitted on samples faster than this only [rad/s | m/s]; None: 20 v_s
         (the viscous branch of the friction curve, clear of a Stribeck hump the model does not carry)
+    work_piece_per_kg : w (p,) of a work piece the tool grips on a model with p > 1 payload parameters (the
+        hexapod's part clamped into its fixture: its standard parameters per kg), or None for none. With it the
+        payload while gripping is the fixture's plus ``m_work w``, and ``work_piece_mass`` is fitted beside the
+        fixture's parameters (the delta's work piece needs no w: its payload is one mass)
     """
 
     smooth_velocity: float
@@ -186,8 +190,15 @@ class CommissioningSettings:
     temperature_iterations: int = 20
     temperature_tol_per_k: float = 1e-7
     temperature_min_speed: float | None = None
+    work_piece_per_kg: Array | None = None
 
     def __post_init__(self) -> None:
+        if self.work_piece_per_kg is not None:
+            w = np.asarray(self.work_piece_per_kg, dtype=float)
+            if w.ndim != 1 or not np.all(np.isfinite(w)) or not w[0] > 0:
+                raise ConfigurationError(
+                    f"work_piece_per_kg: expected finite numbers, the first (mass per kg) > 0; got {w}"
+                )
         if not self.min_temperature_span_k > 0:
             raise ConfigurationError(f"min_temperature_span_k: must be > 0, got {self.min_temperature_span_k}")
         if not self.max_temperature_halfwidth_per_k > 0:
@@ -536,6 +547,14 @@ def _regressor(
         tau_known = tau_known + np.einsum("Nij,j->Ni", Y_p[:, :, 1:], nominal_payload[1:])
         Y_pay = Y_p[:, :, :1]
         pay_names = _payload_names(Y_p.shape[2])[:1]
+    w = settings.work_piece_per_kg
+    if payload_mode != PAYLOAD_SPLIT and w is not None:  # the part clamped while gripping: [.., Y_p w g_k]
+        w = np.asarray(w, dtype=float)
+        if w.shape != (Y_p.shape[2],):
+            raise ConfigurationError(f"work_piece_per_kg: expected {Y_p.shape[2]} numbers, got {w.shape}")
+        y_work = (Y_p @ w) * run.gripping[:, None]
+        Y_pay = np.concatenate([Y_pay, y_work[:, :, None]], axis=2)
+        pay_names = [*pay_names, "work_piece_mass"]
     Y_f = friction_regressor(qd, smooth_velocity=settings.smooth_velocity, stribeck_velocity=settings.stribeck_velocity)
     H = np.concatenate([Y_pay, Y_f], axis=2)  # (K, n, p)
     z = run.effort - tau_known  # z = tau_meas - tau_known
@@ -559,6 +578,7 @@ def _lower_bounds(names: list[str], n_payload: int, payload_mode: str) -> Array:
         lo[:n_payload] = 0.0
     else:
         lo[0] = 0.0  # payload mass
+    lo[[j for j, name in enumerate(names) if name == "work_piece_mass"]] = 0.0
     return lo
 
 
@@ -794,7 +814,7 @@ def _identify(
     half = np.where(keep, t_q * std, np.nan)  # no interval for a held parameter
     payload_parameters = None
     if mode == PAYLOAD_FULL:
-        payload_parameters = theta[:n_payload].copy()
+        payload_parameters = theta[: int(mechanism.n_payload_parameters)].copy()  # the work piece's mass apart
     elif mode == PAYLOAD_MASS:
         if nominal_payload is None:
             raise ConfigurationError("nominal_payload: needed for the mass-only payload model")
@@ -873,8 +893,9 @@ def _unseen(
                     tuple(p for p in params if not p.startswith("offset_")),  # the offset absorbs F_c
                 )
             )
-    if mode == PAYLOAD_SPLIT:
+    if "work_piece_mass" in names:
         g = float(np.mean(gripping))
+        carrier = names[0]  # the tool's (delta) or the fixture's (hexapod) mass
         if g < frac:
             found.append(
                 UnseenDirection(
@@ -887,10 +908,11 @@ def _unseen(
         elif g > 1.0 - frac:
             found.append(
                 UnseenDirection(
-                    ("tool_mass", "work_piece_mass"),
-                    "the tool gripped throughout the run, so the work-piece mass is not separable from the tool mass",
+                    (carrier, "work_piece_mass"),
+                    "the tool gripped throughout the run, so the work-piece mass is not separable from the "
+                    + ("tool mass" if mode == PAYLOAD_SPLIT else "fixture's payload"),
                     0.0,
-                    ("work_piece_mass",),  # the tool mass then carries tool + work piece
+                    ("work_piece_mass",),  # the tool (fixture) mass then carries tool + work piece
                 )
             )
     explained = {name for u in found for name in u.parameters}
@@ -1136,6 +1158,7 @@ def baseline_from_identification(
     nominal_friction: Array | None = None,
     nominal_work_piece_kg: float | None = None,
     stribeck_velocity: float | None = None,
+    work_piece_per_kg: Array | None = None,
 ) -> Baseline:
     """The live tracker's starting point from an identification.
 
@@ -1145,8 +1168,9 @@ def baseline_from_identification(
     A friction parameter the run could not see starts from its nominal value (``nominal_friction`` (k n,), if
     given; else the estimate) with the wide, uncorrelated std ``unseen_std[j]`` ((k n,), e.g. from
     :func:`unseen_prior_std`), so that the tracker learns it once the motion excites it. An unseen work-piece mass
-    (delta) starts from ``nominal_work_piece_kg`` (else 0); if the tool gripped throughout, the tool mass is the
-    estimate (tool + work piece) minus that nominal work piece.
+    (delta, or the hexapod's part) starts from ``nominal_work_piece_kg`` (else 0); if the delta's tool gripped
+    throughout, the tool mass is the estimate (tool + work piece) minus that nominal work piece (the hexapod's
+    fixture parameters held fixture and part together, and lose ``nominal_work_piece_kg * work_piece_per_kg``).
     """
     p_f = len(ident.parameter_names) - ident.n_payload
     if p_f % n_actuators:
@@ -1177,6 +1201,16 @@ def baseline_from_identification(
             raise ConfigurationError("identification: a multi-parameter payload model without payload_parameters")
         tool, work = float(max(ident.payload_parameters[0], 0.0)), 0.0
         payload = ident.payload_parameters
+        if "work_piece_mass" in ident.parameter_names:  # the hexapod's part, fitted beside the fixture
+            j = ident.parameter_names.index("work_piece_mass")
+            work = float(max(ident.theta[j], 0.0))
+            if not ident.identified[j]:
+                work = 0.0 if nominal_work_piece_kg is None else float(nominal_work_piece_kg)
+                if ident.gripping_fraction > 0.5 and work_piece_per_kg is not None:  # gripping throughout: the
+                    payload = payload - work * np.asarray(work_piece_per_kg, dtype=float)  # fixture carried the part
+                    tool = float(max(payload[0], 0.0))
+        elif nominal_work_piece_kg is not None:
+            work = float(nominal_work_piece_kg)
     return Baseline(
         friction_parameters=theta_f,
         friction_covariance=cov_f,
@@ -1223,6 +1257,9 @@ def calibrate_gains(
         y_test = np.einsum("Nij,j->Ni", Y_p, pi_t) * loaded  # Y_p pi_t b_k
         if p_model == 1 and gripped:
             Y_pay = np.concatenate([Y_p, Y_p * run.gripping[:, None, None]], axis=2)
+        elif settings.work_piece_per_kg is not None and gripped:  # the hexapod's part: [Y_p, Y_p w g_k]
+            y_work = (Y_p @ np.asarray(settings.work_piece_per_kg, dtype=float)) * run.gripping[:, None]
+            Y_pay = np.concatenate([Y_p, y_work[:, :, None]], axis=2)
         else:
             Y_pay = Y_p
         Y_f = friction_regressor(

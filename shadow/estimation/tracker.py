@@ -16,8 +16,12 @@ State x = [theta_p, theta_f]:
   the tool mass always and the work-piece mass only while the tool grips: H_p = [Y_p, Y_p g_k] with g_k = 1 while
   gripping, 0 otherwise. Without a gripping signal g_k = 0: the work-piece mass then gets no information, and the
   filter flags it as not identifiable rather than guessing;
-- hexapod (or any model with p > 1 payload parameters): theta_p = the model's p parameters (tool and work piece
-  together), H_p = Y_p;
+- hexapod (or any model with p > 1 payload parameters) with a declared work piece (a part clamped into the
+  fixture while the tool state says so): theta_p = [pi_fixture (p), m_work]; the part's parameters are its mass
+  times a declared w (p,) (its centre of mass and inertia per kg, ``work_piece_per_kg``), so that
+  H_p = [Y_p, (Y_p w) g_k]: the payload while gripping is pi_fixture + m_work w (the parameters of two rigid
+  bodies add). The delta's case is w = [1];
+- hexapod without a declared work piece: theta_p = the model's p parameters, H_p = Y_p;
 - theta_f: friction, k parameters per actuator (Coulomb, viscous, offset, optionally Stribeck), actuator-major.
 
 The samples are grouped into output periods of ``output_period_s`` by their time stamps (block j holds the samples
@@ -81,6 +85,8 @@ class TrackerSettings:
         (the last three set the effort's instant, :attr:`effort_delay_s`)
     noise_time_constant_s : tau_R of the adaptive measurement noise [s], or None to keep R fixed
     n_temperatures : width of the optional temperature channel (0: none)
+    work_piece_per_kg : w (p_model,) the gripped work piece's model parameters per kg of its mass, or None: the
+        delta's [1]; no work piece on a model with p > 1 (see the module docstring)
     identifiability_memory_s : tau_I [s] of the identifiability flag's memory, or None: each output is judged on
         its own batch. With it, the information the batches added about parameter i,
         ``I_i <- exp(-T / tau_I) I_i + (1 / P+_ii - 1 / P-_ii)`` (T: time since the previous update), is
@@ -105,6 +111,7 @@ class TrackerSettings:
     reported_effort: tuple[ReportedEffort, ...] | None = None
     command_period_s: Array | None = None
     identifiability_memory_s: float | None = None
+    work_piece_per_kg: Array | None = None
 
     def effort_delay_s(self, n_actuators: int) -> Array:
         """d (n,) [s]: the reported effort at t_k belongs to the motion at t_k - d (see the module docstring)."""
@@ -153,10 +160,20 @@ class PayloadFrictionTracker:
         self.mechanism = mechanism
         self.settings = settings
         self.n_actuators = n
-        self._split_work_piece = p_model == 1  # one payload mass: tool + gripped work piece
+        self.n_model_payload = p_model
+        w = settings.work_piece_per_kg
+        if w is None and p_model == 1:
+            w = np.ones(1)
+        if w is not None:
+            w = np.asarray(w, dtype=float)
+            if w.shape != (p_model,) or not np.all(np.isfinite(w)) or not w[0] > 0:
+                raise ConfigurationError(
+                    f"work_piece_per_kg: expected {p_model} finite numbers, the first (mass per kg) > 0; got {w}"
+                )
+        self.work_piece_per_kg = w  # (p_model,) or None
         k = parameters_per_actuator(stribeck=settings.stribeck_velocity is not None)
         self.friction_per_actuator = k
-        if self._split_work_piece:
+        if p_model == 1:
             payload_names = ["tool_mass", "work_piece_mass"]
             theta_p0 = np.array([baseline.tool_mass_kg, baseline.work_piece_mass_kg])
             lower_p = np.zeros(2)
@@ -167,9 +184,13 @@ class PayloadFrictionTracker:
                 theta_p0 = baseline.payload_parameters
             else:  # tool (+ work piece) as a point mass at the platform origin
                 theta_p0 = np.zeros(p_model)
-                theta_p0[0] = baseline.tool_mass_kg + baseline.work_piece_mass_kg
+                theta_p0[0] = baseline.tool_mass_kg + (0.0 if w is not None else baseline.work_piece_mass_kg)
             lower_p = np.full(p_model, -np.inf)
             lower_p[0] = 0.0  # mass >= 0
+            if w is not None:  # the fixture's parameters, then the part's mass
+                payload_names = [*payload_names, "work_piece_mass"]
+                theta_p0 = np.append(theta_p0, baseline.work_piece_mass_kg)
+                lower_p = np.append(lower_p, 0.0)
         p = len(payload_names)
         self.n_payload = p
         if baseline.n_actuators != n:
@@ -340,8 +361,9 @@ class PayloadFrictionTracker:
         t = s["t"]
         tau_known, Y_p, qd_effort = regressor_at_efforts(self.mechanism, self._effort_motion(s))
         grip = s["gripping"][:, 0]
-        if self._split_work_piece:
-            Y_pay = np.concatenate([Y_p, Y_p * grip[:, None, None]], axis=2)  # [Y_p, Y_p g_k]
+        if self.work_piece_per_kg is not None:
+            y_work = (Y_p @ self.work_piece_per_kg) * grip[:, None]  # (K, n): Y_p w g_k
+            Y_pay = np.concatenate([Y_p, y_work[:, :, None]], axis=2)  # [Y_p, Y_p w g_k]
         else:
             Y_pay = Y_p
         Y_f = friction_regressor(
@@ -392,6 +414,21 @@ class PayloadFrictionTracker:
             tau_known=tau_known,
             Y_payload=Y_p,
         )
+
+    @property
+    def work_piece_index(self) -> int | None:
+        """Index of ``work_piece_mass`` in the state, or None when the robot carries no declared work piece."""
+        return None if self.work_piece_per_kg is None else self.n_model_payload
+
+    def payload_per_sample(self, x: Array, gripping: Array) -> Array:
+        """The model's payload parameters per sample (K, p_model) from a state x and the tool state (K,) (0 or 1):
+        ``theta_p,k = pi + m_work w g_k`` (pi: the first p_model entries of x)."""
+        p = self.n_model_payload
+        g = np.asarray(gripping, dtype=float)
+        theta = np.broadcast_to(np.asarray(x[:p], dtype=float), (g.shape[0], p))
+        if self.work_piece_per_kg is None:
+            return theta.copy()
+        return theta + (float(x[p]) * g)[:, None] * self.work_piece_per_kg[None, :]
 
     def _effort_motion(self, s: Mapping[str, Array]) -> EffortMotion:
         """The pending motion at the efforts' instants, (K, G n) arrays back to :class:`EffortMotion`."""

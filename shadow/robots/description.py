@@ -33,7 +33,7 @@ from __future__ import annotations
 
 import tomllib
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
@@ -128,16 +128,44 @@ class DeltaTool:
         """theta_p (1,) [kg]: the tool, plus the work piece while gripping."""
         return np.array([self.tool_mass_kg + (self.work_piece_mass_kg if gripping else 0.0)])
 
+    def work_piece_parameters_per_kg(self) -> Array:
+        """w (1,): a work piece of mass m adds m w to theta_p (the model's one payload mass)."""
+        return np.ones(1)
+
 
 @dataclass(frozen=True, slots=True)
 class HexapodFixture:
-    """Nominal fixture (with part) carried by the hexapod platform."""
+    """Nominal fixture clamped on the hexapod platform, and the part loaded into it between moves.
 
-    payload: RigidPayload
+    The fixture is always carried; the part only while the tool state says so (a clamped part). A part of
+    zero mass means the cell declares none: the whole payload is then the fixture.
+    """
 
-    def payload_parameters(self, *, gripping: bool = True) -> Array:
-        """theta_p (10,): standard inertial parameters about the platform origin (``gripping`` is ignored)."""
-        return self.payload.standard_parameters()
+    payload: RigidPayload  # the fixture, always carried
+    part: RigidPayload = field(default_factory=lambda: RigidPayload(mass_kg=0.0))  # loaded while gripping
+    part_tolerance_kg: float = 0.0  # +- spread of the part's mass accepted as normal
+
+    def payload_parameters(self, *, gripping: bool = False) -> Array:
+        """theta_p (10,): standard inertial parameters about the platform origin, of the fixture and, while
+        ``gripping``, of the part with it (the parameters of two rigid bodies add)."""
+        theta = self.payload.standard_parameters()
+        return theta + self.part.standard_parameters() if gripping else theta
+
+    @property
+    def work_piece_mass_kg(self) -> float:
+        """Mass of the declared part [kg] (0: none declared)."""
+        return float(self.part.mass_kg)
+
+    @property
+    def work_piece_tolerance_kg(self) -> float:
+        """Accepted +- spread of the part's mass [kg]."""
+        return float(self.part_tolerance_kg)
+
+    def work_piece_parameters_per_kg(self) -> Array | None:
+        """w (10,): the part's standard parameters per kg of its mass (its centre of mass and inertia fixed), so
+        that a part of mass m adds ``m w``; None when no part is declared."""
+        m = float(self.part.mass_kg)
+        return None if m <= 0.0 else self.part.standard_parameters() / m
 
 
 @dataclass(frozen=True, slots=True)
@@ -402,6 +430,12 @@ def _parse_hexapod(top: _Table, name: str, gravity: Array, source: str, max_home
         com_m=tool_t.vector("fixture_com_m", 3, default=np.zeros(3)),
         inertia_kg_m2=tool_t.inertia_tensor("fixture_inertia_kg_m2", default=np.zeros((3, 3))),
     )
+    part = RigidPayload(
+        mass_kg=tool_t.number("part_mass_kg", non_negative=True, default=0.0),
+        com_m=tool_t.vector("part_com_m", 3, default=np.zeros(3)),
+        inertia_kg_m2=tool_t.inertia_tensor("part_inertia_kg_m2", default=np.zeros((3, 3))),
+    )
+    part_tolerance = tool_t.number("part_tolerance_kg", non_negative=True, default=0.0)
     tool_t.finish()
 
     home_t = top.table("home")
@@ -444,7 +478,9 @@ def _parse_hexapod(top: _Table, name: str, gravity: Array, source: str, max_home
         gravity_m_s2=gravity,
     )
     friction = _parse_friction(top, 6, "n", "n_s_per_m", "m_s", DEFAULT_SMOOTH_VELOCITY_M_S)
-    return RobotDescription(name, "hexapod", params, HexapodFixture(payload), source, friction, home.copy())
+    return RobotDescription(
+        name, "hexapod", params, HexapodFixture(payload, part, part_tolerance), source, friction, home.copy()
+    )
 
 
 def _paired_joints(geo: _Table) -> tuple[Array, Array]:

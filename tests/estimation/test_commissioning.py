@@ -358,6 +358,41 @@ def test_hexapod_without_rotation_estimates_the_mass_only(hexapod, rng: np.rando
     assert_allclose(baseline.tool_mass_kg, truth[0], rtol=0.01)
 
 
+def test_hexapod_part_mass_is_fitted_beside_the_fixture(hexapod, rng: np.random.Generator) -> None:
+    """A part clamped every other second: its mass is fitted apart from the fixture's ten parameters.
+
+    The efforts are made with pi_fixture + m_part w while gripping (the standard parameters of two rigid bodies
+    about one point add: common practice, no source)."""
+    model, fixture = hexapod
+    desc = load_description(EXAMPLES_DIR / "hexapod_inspection.toml")
+    w = desc.tool.work_piece_parameters_per_kg()
+    m_part = 0.9 * desc.tool.work_piece_mass_kg
+    t, q, tau_empty = hexapod_run(model, rng, fixture, 0.03, 0.08)
+    t, q, tau_full = hexapod_run(model, np.random.default_rng(1), fixture + m_part * w, 0.03, 0.08)
+    grip = np.floor(t / 0.4) % 2 == 1
+    tau = np.where(grip[:, None], tau_full, tau_empty)  # each row: one noise draw on its own payload's effort
+    s = settings(smooth_velocity=HEX_V_S, work_piece_per_kg=w)
+    ident = identify_run(model, condition_run(t, q, tau, grip, s), s, nominal_payload=fixture)
+    j = ident.parameter_names.index("work_piece_mass")
+    assert ident.n_payload == j + 1 and ident.identified[j]
+    assert abs(ident.theta[j] - m_part) < 4.5 * ident.std[j]
+    assert_allclose(ident.theta[j], m_part, rtol=0.03)
+    assert ident.payload_parameters is not None and ident.payload_parameters.shape == (10,)
+    assert_allclose(ident.payload_parameters[0], fixture[0], rtol=0.02)
+    baseline = baseline_from_identification(ident, 6, unseen_std=np.ones(18), nominal_work_piece_kg=0.8)
+    assert_allclose(baseline.work_piece_mass_kg, ident.theta[j])
+    # gripping throughout: the part is not separable from the fixture, said in words and held at nominal
+    always = identify_run(model, condition_run(t, q, tau_full, np.ones_like(grip), s), s, nominal_payload=fixture)
+    assert not always.identified[always.parameter_names.index("work_piece_mass")]
+    assert any("not separable from the fixture" in u.explanation for u in always.unseen)
+    held = baseline_from_identification(
+        always, 6, unseen_std=np.ones(18), nominal_work_piece_kg=m_part, work_piece_per_kg=w
+    )
+    assert held.payload_parameters is not None
+    assert_allclose(held.payload_parameters[0], fixture[0], rtol=0.02)  # the part taken back off the fixture
+    assert_allclose(held.work_piece_mass_kg, m_part)
+
+
 # ------------------------------------------------------------------------------------------ time stamps
 
 

@@ -343,6 +343,73 @@ def test_hexapod_tracks_ten_payload_parameters(rng: np.random.Generator) -> None
     assert np.all(np.abs(out.x - np.concatenate([theta_p, theta_f])) < 5 * out.std + 1e-6)
 
 
+def test_hexapod_tracks_a_clamped_part_beside_its_fixture(rng: np.random.Generator) -> None:
+    """A part clamped while the tool state says so: the filter weighs it apart from the fixture.
+
+    Check against a physical law (common practice, no source): the standard inertial parameters of two rigid bodies
+    about one point add, so the payload while gripping is pi_fixture + m_part w with w the part's parameters per kg;
+    the effort is computed from that sum by the model's own inverse dynamics, sample by sample."""
+    path = next(p for p in example_paths() if "hexapod" in p.name)
+    desc = load_description(path)
+    model = build_model(desc)
+    fixture = desc.tool.payload_parameters()
+    w = desc.tool.work_piece_parameters_per_kg()
+    assert w is not None and desc.tool.work_piece_mass_kg > 0
+    assert_allclose(desc.tool.payload_parameters(gripping=True), fixture + desc.tool.work_piece_mass_kg * w)
+    q_home = model.inverse_kinematics(np.asarray(desc.home_position_m)[None, :], np.eye(3)[None])[0]
+    dt = 2.0e-3
+    t = np.arange(10000) * dt  # 20 s
+    omega = 2 * np.pi * np.array([0.9, 1.3, 1.7, 2.1, 2.3, 2.9])
+    phase = np.outer(t, omega) + np.arange(6)
+    a = 0.015
+    q, qd, qdd = q_home + a * np.sin(phase), a * omega * np.cos(phase), -a * omega**2 * np.sin(phase)
+    grip = np.floor(t / 0.9) % 2 == 1  # clamped every other 0.9 s
+    m_part = 1.15 * desc.tool.work_piece_mass_kg  # heavier than declared: the filter must see it
+    theta_f = np.tile([25.0, 400.0, 2.0], 6)
+    effort = np.empty_like(q)
+    for g in (False, True):
+        rows = grip == g
+        theta = fixture + (m_part * w if g else 0.0)
+        effort[rows] = model.inverse_dynamics(q[rows], qd[rows], qdd[rows], theta)
+    effort += friction_effort(qd, theta_f, smooth_velocity=5e-4) + 0.5 * rng.normal(size=effort.shape)
+    baseline = Baseline(
+        friction_parameters=theta_f,
+        friction_covariance=np.diag((0.1 * theta_f) ** 2),
+        noise_std=np.full(6, 0.5),
+        tool_mass_kg=float(fixture[0]),
+        work_piece_mass_kg=desc.tool.work_piece_mass_kg,
+        payload_parameters=fixture,
+    )
+    settings = TrackerSettings(
+        half_window=6,
+        poly_order=4,
+        max_gap_s=0.02,
+        output_period_s=1.0,
+        smooth_velocity=5e-4,
+        payload_prior_std=np.array([2.0, 0.2, 0.2, 0.2, 0.05, 0.05, 0.05, 0.05, 0.05, 0.05, 0.5]),
+        payload_walk_std=np.full(11, 1e-4),
+        friction_walk_std=np.array([0.1, 1.0, 0.1]),
+        payload_resolution=np.array([0.1] + [0.01] * 9 + [0.02]),
+        friction_resolution=np.array([1.0, 10.0, 1.0]),
+        work_piece_per_kg=w,
+    )
+    tracker = PayloadFrictionTracker(model, settings, baseline)
+    out = tracker.process(t, q, effort, tool_gripping=grip)[-1]
+    j = tracker.work_piece_index
+    assert j == 10 and out.parameter_names[j] == "work_piece_mass"
+    assert out.identifiable[j] and out.identifiable[0]
+    assert abs(out.x[j] - m_part) < max(4 * out.std[j], 0.01), (out.x[j], out.std[j])
+    assert abs(out.x[0] - fixture[0]) < max(4 * out.std[0], 0.02)  # the fixture is not pulled by the part
+    theta_k = tracker.payload_per_sample(out.x, np.array([0.0, 1.0]))
+    assert_allclose(theta_k[1] - theta_k[0], out.x[j] * w)
+    # without the tool state the part is invisible: flagged, not guessed
+    blind = PayloadFrictionTracker(model, settings, baseline)
+    out_blind = blind.process(t, q, effort)[-1]
+    assert not out_blind.identifiable[j]
+    with pytest.raises(ConfigurationError, match="work_piece_per_kg"):
+        PayloadFrictionTracker(model, dataclasses.replace(settings, work_piece_per_kg=np.ones(3)), baseline)
+
+
 def test_baseline_round_trip_and_errors() -> None:
     b = Baseline(
         friction_parameters=np.arange(6.0),
