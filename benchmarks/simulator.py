@@ -43,12 +43,15 @@ def _delta_case(n_batch: int, duration_s: float, rng: np.random.Generator):
 def _hexapod_case(n_batch: int, duration_s: float, rng: np.random.Generator):
     desc = load_description(next(p for p in example_paths() if "hexapod" in p.name))
     home = desc.parameters.home_position_m
-    part = desc.tool.payload_parameters()
+    fixture = desc.tool.payload_parameters()
+    part = desc.tool.part.standard_parameters()
     t = np.arange(round(duration_s / STEP_S)) * STEP_S
     samples = [
-        hexapod_positioning(rng, 2, home_m=home, move_time_s=0.2, dwell_s=0.05, part_parameters=part).sample(t)
+        hexapod_positioning(
+            rng, 2, home_m=home, move_time_s=0.2, dwell_s=0.05, fixture_parameters=fixture, part_parameters=part
+        ).sample(t)
         if i % 2 == 0
-        else hexapod_multisine(rng, home_m=home).sample(t, part)
+        else hexapod_multisine(rng, home_m=home).sample(t, fixture)
         for i in range(n_batch)
     ]
 

@@ -107,10 +107,20 @@ def simulate_windows(description: RobotDescription, rng: np.random.Generator, se
         n = 3
     else:
         home = np.asarray(description.parameters.home_position_m, dtype=float)  # type: ignore[union-attr]
-        part = description.tool.payload_parameters()
+        fixture = description.tool.payload_parameters()  # type: ignore[union-attr]
+        has_part = description.tool.work_piece_mass_kg > 0.0  # type: ignore[union-attr]
+        part = description.tool.part.standard_parameters() if has_part else None  # type: ignore[union-attr]
         n_moves = int(np.ceil(settings.window_s / 0.9)) + 1
         samples = [
-            hexapod_positioning(rng, n_moves, home_m=home, move_time_s=0.6, dwell_s=0.3, part_parameters=part).sample(t)
+            hexapod_positioning(
+                rng,
+                n_moves,
+                home_m=home,
+                move_time_s=0.6,
+                dwell_s=0.3,
+                fixture_parameters=fixture,
+                part_parameters=part,
+            ).sample(t)
             for _ in range(b)
         ]
         reference = hexapod_reference(plant.mechanism, samples)

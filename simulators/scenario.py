@@ -152,8 +152,8 @@ class WindowTruth:
     drive_temperature_start_c: tuple[float, ...]  # (n,)
     drive_temperature_mean_c: tuple[float, ...]  # (n,)
     tool_mass_kg: float  # delta: the tool; hexapod: the fixture (its mass)
-    work_piece_mass_kg: float | None  # delta: the nominal work-piece mass in force; hexapod: None
-    payload_parameters: tuple[float, ...]  # delta: [tool mass]; hexapod: the 10 fixture parameters when loaded
+    work_piece_mass_kg: float | None  # nominal work-piece (delta) or part (hexapod) mass in force; None: no part
+    payload_parameters: tuple[float, ...]  # delta: [tool mass]; hexapod: the 10 fixture parameters (always carried)
     carried_work_piece_masses_kg: tuple[float, ...]  # delta: per cycle of the window (0: missed pick)
     friction: FrictionTruth
     wear: tuple[WearTruth, ...]
@@ -234,7 +234,7 @@ class _Plan:
     day: float
     tool_mass_kg: float
     work_piece_mass_kg: float | None
-    theta_part: Array  # hexapod: (10,) fixture parameters; delta: (0,)
+    theta_fixture: Array  # hexapod: (10,) fixture parameters, always carried; delta: (0,)
     cycles: PickPlaceCycles | None
     hexapod_path: Any  # SegmentPath for a hexapod
     factors: tuple[Array, Array, Array]  # (n,) coulomb, static, viscous
@@ -248,7 +248,8 @@ def _payload_at(scenario: Scenario, day: float) -> tuple[float, float | None]:
     if scenario.description.family == "delta":
         mass, piece = float(tool.tool_mass_kg), float(tool.work_piece_mass_kg)  # type: ignore[union-attr]
     else:
-        mass, piece = float(tool.payload.mass_kg), None  # type: ignore[union-attr]
+        mass = float(tool.payload.mass_kg)  # type: ignore[union-attr]
+        piece = float(tool.work_piece_mass_kg) if tool.work_piece_mass_kg > 0.0 else None  # the declared part
     for step in scenario.payload_steps:
         if step.day <= day:
             mass = step.tool_mass_kg if step.tool_mass_kg is not None else mass
@@ -275,7 +276,7 @@ def _plan(scenario: Scenario, k: int) -> _Plan:
     mass, piece = _payload_at(scenario, day)
     cycles = None
     hexapod_path = None
-    theta_part = np.zeros(0)
+    theta_fixture = np.zeros(0)
     if desc.family == "delta":
         picks = scenario.picks
         active = picks is not None and picks.start_day <= day < picks.end_day
@@ -292,10 +293,18 @@ def _plan(scenario: Scenario, k: int) -> _Plan:
         )
     else:
         nominal = desc.tool.payload_parameters()
-        theta_part = nominal * (mass / float(nominal[0]))  # same centre of mass, inertia per kg unchanged
+        theta_fixture = nominal * (mass / float(nominal[0]))  # same centre of mass, inertia per kg unchanged
+        per_kg = desc.tool.work_piece_parameters_per_kg()  # type: ignore[union-attr]
+        theta_piece = None if per_kg is None or not piece else per_kg * piece  # the part's centre, inertia per kg kept
         home = np.asarray(desc.parameters.home_position_m, dtype=float)  # type: ignore[union-attr]
         hexapod_path = hexapod_positioning(
-            rng, int(np.ceil(w_s / 0.9)) + 1, home_m=home, move_time_s=0.6, dwell_s=0.3, part_parameters=theta_part
+            rng,
+            int(np.ceil(w_s / 0.9)) + 1,
+            home_m=home,
+            move_time_s=0.6,
+            dwell_s=0.3,
+            fixture_parameters=theta_fixture,
+            part_parameters=theta_piece,
         )
     f = {term: np.ones(n) for term in ("coulomb", "static", "viscous")}
     wear = []
@@ -322,7 +331,7 @@ def _plan(scenario: Scenario, k: int) -> _Plan:
         day=day,
         tool_mass_kg=mass,
         work_piece_mass_kg=piece,
-        theta_part=theta_part,
+        theta_fixture=theta_fixture,
         cycles=cycles,
         hexapod_path=hexapod_path,
         factors=(f["coulomb"], f["static"], f["viscous"]),
@@ -524,7 +533,7 @@ def generate(scenario: Scenario) -> Iterator[ScenarioWindow]:
                 drive_temperature_mean_c=_tuple(rec.temperature_c[i].mean(axis=0)),
                 tool_mass_kg=plan.tool_mass_kg,
                 work_piece_mass_kg=plan.work_piece_mass_kg,
-                payload_parameters=(plan.tool_mass_kg,) if desc.family == "delta" else _tuple(plan.theta_part),
+                payload_parameters=(plan.tool_mass_kg,) if desc.family == "delta" else _tuple(plan.theta_fixture),
                 carried_work_piece_masses_kg=() if plan.cycles is None else _tuple(plan.cycles.workpiece_mass_kg),
                 friction=FrictionTruth(
                     coulomb=_tuple(rec.truth.friction_coulomb[i]),

@@ -473,10 +473,11 @@ def _payload_steps(faults: _Table, description: RobotDescription, horizon_days: 
         tool = t.number("tool_mass_kg", None, above=0.0, maximum=1000.0)
         piece = None
         if t.has("work_piece_mass_kg"):
-            if description.family != "delta":
+            if description.tool.work_piece_mass_kg <= 0.0:
                 t.raw("work_piece_mass_kg")
                 raise t.error(
-                    "work_piece_mass_kg", f"only a delta picks work pieces; this robot is a {description.family}"
+                    "work_piece_mass_kg",
+                    f"this {description.family}'s description declares no work piece or part to change the mass of",
                 )
             piece = t.number("work_piece_mass_kg", minimum=0.0, maximum=100.0)
         if tool is None and piece is None:

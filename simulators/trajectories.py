@@ -265,19 +265,24 @@ def hexapod_positioning(
     tilt_rad: float = 0.03,
     move_time_s: float = 0.6,
     dwell_s: float = 0.3,
+    fixture_parameters: Array | None = None,
     part_parameters: Array | None = None,
 ) -> SegmentPath:
     """Point-to-point moves between random poses near ``home_m`` with the 3-4-5 law, and dwells.
 
     The poses are positions within ``reach_m`` per axis of the home position and XYZ angles within
-    ``tilt_rad``; x is (T, 6) = [position, angles]. With ``part_parameters`` (10,), a part is loaded during
-    the dwell after every even move and unloaded after every odd one (theta_p = part or 0).
+    ``tilt_rad``; x is (T, 6) = [position, angles]. The platform carries ``fixture_parameters`` (10,) throughout
+    (zeros without one). With ``part_parameters`` (10,), a part is clamped into the fixture during the dwell after
+    every even move and taken out after every odd one: theta_p = fixture + part while the part is in (the tool
+    signal is True), fixture alone otherwise.
     """
     if n_moves < 1:
         raise ConfigurationError(f"n_moves: must be >= 1, got {n_moves}")
+    fixture = np.zeros(10) if fixture_parameters is None else np.asarray(fixture_parameters, dtype=float)
     part = np.zeros(10) if part_parameters is None else np.asarray(part_parameters, dtype=float)
-    if part.shape != (10,):
-        raise ShapeError(f"part_parameters: expected shape (10,), got {part.shape}")
+    for name, value in (("fixture_parameters", fixture), ("part_parameters", part)):
+        if value.shape != (10,):
+            raise ShapeError(f"{name}: expected shape (10,), got {value.shape}")
     home = np.concatenate([np.asarray(home_m, dtype=float), np.zeros(3)])
     points: list[Array] = [home.copy()]
     durations: list[float] = []
@@ -286,12 +291,11 @@ def hexapod_positioning(
     carrying = False
     for _ in range(n_moves):
         goal = home + np.concatenate([rng.uniform(-reach_m, reach_m, 3), rng.uniform(-tilt_rad, tilt_rad, 3)])
-        theta = part if carrying else np.zeros(10)
         points += [goal, goal]
         durations += [move_time_s, dwell_s]
         carrying_after = (not carrying) if part_parameters is not None else False  # load, unload, ...
         tools += [carrying, carrying_after]
-        payloads += [theta, part if carrying_after else np.zeros(10)]
+        payloads += [fixture + part if carrying else fixture, fixture + part if carrying_after else fixture]
         carrying = carrying_after
     return _path_from_waypoints(points, durations, tools, payloads, MotionLaw.POLY345)
 

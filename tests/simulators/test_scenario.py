@@ -290,7 +290,8 @@ def test_hexapod_scenario_carries_the_stepped_fixture() -> None:
     nominal = sc.description.tool.payload_parameters()
     assert_allclose(windows[0].truth.payload_parameters, nominal, rtol=1e-12)
     assert_allclose(windows[1].truth.payload_parameters, nominal * 7.0 / nominal[0], rtol=1e-12)
-    assert windows[1].truth.tool_mass_kg == 7.0 and windows[1].truth.work_piece_mass_kg is None
+    assert windows[1].truth.tool_mass_kg == 7.0
+    assert windows[1].truth.work_piece_mass_kg == sc.description.tool.work_piece_mass_kg  # the part is unchanged
     batch = windows[0].batches[0]
     assert batch.q.shape == (5, 6) and batch.effort is not None  # 250 Hz, 20 ms messages, leg forces
     assert_array_equal(np.diff([b.seq for b in windows[1].batches]), 1)

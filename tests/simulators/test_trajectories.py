@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
-from shadow.errors import ConfigurationError
+from shadow.errors import ConfigurationError, ShapeError
 from shadow.robots.rotations import rotation_from_xyz_angles
 from simulators.trajectories import (
     MotionLaw,
@@ -127,3 +127,18 @@ def test_hexapod_positioning_loads_and_unloads(rng):
     carried = np.all(path.theta_p == part, axis=1)
     assert carried.tolist() == [False, True, True, False, False, True, True, False]
     assert (path.tool == carried).all()
+
+
+def test_hexapod_positioning_keeps_the_fixture_and_changes_the_part(rng):
+    fixture, part = np.linspace(2.0, 3.0, 10), np.arange(1.0, 11.0)
+    path = hexapod_positioning(
+        rng, 4, home_m=np.array([0.0, 0.0, 0.35]), fixture_parameters=fixture, part_parameters=part
+    )
+    with_part = np.all(path.theta_p == fixture + part, axis=1)
+    fixture_only = np.all(path.theta_p == fixture, axis=1)
+    assert (with_part | fixture_only).all() and with_part.any() and fixture_only.any()
+    assert (path.tool == with_part).all()  # the tool signal says whether the part is in
+    empty = hexapod_positioning(rng, 2, home_m=np.array([0.0, 0.0, 0.35]), fixture_parameters=fixture)
+    assert np.all(empty.theta_p == fixture) and not empty.tool.any()
+    with pytest.raises(ShapeError, match="fixture_parameters"):
+        hexapod_positioning(rng, 2, home_m=np.zeros(3), fixture_parameters=np.zeros(9))
