@@ -56,6 +56,19 @@ def build_feed(args: argparse.Namespace, *, realtime_start: bool) -> Feed:
     if description.family != args.family:
         raise ShadowError(f"{path}: describes a {description.family}, not a {args.family}")
     first, later = feed_settings(args.family)
+    for name in ("impact_fraction", "pick_fault_fraction"):
+        value = getattr(args, name)
+        if value is not None and not 0.0 <= value <= 1.0:
+            raise ShadowError(f"--{name.replace('_', '-')}: must be within 0..1, got {value}")
+    if args.impact_fraction is not None:
+        first, later = (dataclasses.replace(s, impact_probability=args.impact_fraction) for s in (first, later))
+    if args.pick_fault_fraction is not None:
+        first, later = (
+            dataclasses.replace(
+                s, missed_pick_probability=args.pick_fault_fraction, double_pick_probability=args.pick_fault_fraction
+            )
+            for s in (first, later)
+        )
     if args.no_impacts:
         first, later = (dataclasses.replace(s, impact_probability=0.0) for s in (first, later))
     samples = 10 if args.family == "delta" else 5  # 10 ms and 20 ms messages
@@ -161,6 +174,12 @@ def main(argv: list[str] | None = None) -> int:
         p.add_argument("--duration", type=float, default=None if name == "live" else 60.0, metavar="S")
         p.add_argument("--truth", default=None, help="ground-truth file (JSON)")
         p.add_argument("--no-impacts", action="store_true", help="a healthy run (for commissioning)")
+        defaults = FeedSettings()
+        p.add_argument("--impact-fraction", type=float, default=None, metavar="F",
+                       help=f"share of windows with one impact (default {defaults.impact_probability})")  # fmt: skip
+        p.add_argument("--pick-fault-fraction", type=float, default=None, metavar="F",
+                       help="delta: share of cycles with a missed pick, and the same share with a double pick "
+                       f"(default {defaults.missed_pick_probability})")  # fmt: skip
         p.set_defaults(handler=handler)
         if name == "live":
             p.add_argument("--host", default="127.0.0.1")

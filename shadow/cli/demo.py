@@ -34,6 +34,10 @@ CAUTION = (
     "functions (ISO 10218-1/-2, ISO 13849) in place and defer to local codes and qualified people."
 )
 SITE, CELL = "demo-site", "cell-1"
+# a few faults per robot in ten minutes, so the page shows events without staying on them (invented for the demo):
+# one window in 25 (3-4 s each) with an impact, one delta cycle in 200 with a missed pick and one with a double pick
+DEMO_IMPACT_FRACTION = 0.04
+DEMO_PICK_FAULT_FRACTION = 0.005
 
 
 @dataclass(frozen=True)
@@ -227,6 +231,10 @@ def run(args: argparse.Namespace) -> int:
                         protocol,
                         "--truth",
                         str(workdir / f"{r.robot}-truth.json"),
+                        "--impact-fraction",
+                        str(DEMO_IMPACT_FRACTION),
+                        "--pick-fault-fraction",
+                        str(DEMO_PICK_FAULT_FRACTION),
                     ),
                     stdout=log,
                     stderr=log,
