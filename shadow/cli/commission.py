@@ -546,6 +546,7 @@ def baseline_document(
     doc["noise"] = {"std": ident.noise_std.tolist(), "unit": "N.m" if rotary else "N"}
     doc["excitation"] = {
         "condition_number": _num(ident.condition_number),
+        "fitted_condition_number": _num(ident.fitted_condition_number),
         "max_condition": settings.max_condition,
         "singular_values": ident.singular_values.tolist(),
         "unseen": [
@@ -684,7 +685,10 @@ def report_lines(
     lines.append(
         "noise std per actuator: " + ", ".join(f"{i + 1}: {s:.4g} {unit}" for i, s in enumerate(ident.noise_std))
     )
-    lines.append(f"condition number (column-scaled regressor): {ident.condition_number:.4g}")
+    kappa = f"condition number (column-scaled regressor): {ident.condition_number:.4g}"
+    if ident.held.any():  # a held parameter's empty column makes the first figure huge: say what was solved
+        kappa += f"; {ident.fitted_condition_number:.4g} without the {int(ident.held.sum())} held parameter(s)"
+    lines.append(kappa)
     if ident.unseen:
         lines.append("what the run could not see:")
         lines += [f"  - {u.explanation}" for u in ident.unseen]

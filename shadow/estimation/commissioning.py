@@ -322,7 +322,8 @@ class Identification:
     residual: Array  # (K, n) z - H theta [N m | N]
     dof: int  # N n - p
     confidence: float
-    condition_number: float  # kappa of the column-scaled, weighted regressor
+    condition_number: float  # kappa of the column-scaled, weighted regressor, every parameter in
+    fitted_condition_number: float  # kappa of the same, the held parameters' columns left out (the final fit's)
     singular_values: Array  # (p,) of the column-scaled regressor, descending
     unseen: tuple[UnseenDirection, ...]
     motion: tuple[ActuatorMotion, ...]
@@ -804,8 +805,12 @@ def _identify(
     theta = np.zeros(p)  # held parameters stay at 0: their effect is absorbed by, or lost with, the others
     cov = np.zeros((p, p))
     at_bound = np.zeros(p, dtype=bool)
+    kappa = float(s[0] / s[-1]) if s[-1] > 0 else float("inf")
+    fitted_kappa = kappa
     if not keep.all():  # solve again without the parameters the run could not see
         fit = _fit(H[:, :, keep], z, lower[keep], settings)
+        s_fit = scaled_singular_values(fit.A)[0]
+        fitted_kappa = float(s_fit[0] / s_fit[-1]) if s_fit[-1] > 0 else float("inf")
     theta[keep] = fit.theta
     cov[np.ix_(keep, keep)] = fit.cov
     at_bound[keep] = fit.at_bound
@@ -832,7 +837,8 @@ def _identify(
         residual=fit.residual,
         dof=fit.dof,
         confidence=settings.confidence,
-        condition_number=float(s[0] / s[-1]) if s[-1] > 0 else float("inf"),
+        condition_number=kappa,
+        fitted_condition_number=fitted_kappa,
         singular_values=s,
         unseen=unseen,
         motion=motion,

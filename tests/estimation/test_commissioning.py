@@ -200,6 +200,9 @@ def test_names_what_a_poor_run_could_not_see(delta: DeltaModel, rng: np.random.G
         j = ident.parameter_names.index(name)
         assert abs(ident.theta[j] - TRUTH[j]) < 4.5 * ident.std[j], name
     assert ident.condition_number > 200.0  # the one-way actuator's Coulomb column equals its offset column
+    # without the held columns what was solved is well posed, and the report says so beside the first figure
+    assert np.isfinite(ident.fitted_condition_number)
+    assert ident.fitted_condition_number < min(ident.condition_number, settings().max_condition)
     # the baseline built from it is still usable: unseen friction starts from nominal with a wide prior
     baseline = baseline_from_identification(ident, 3, unseen_std=UNSEEN_STD, nominal_friction=THETA_F)
     j = ident.parameter_names.index("coulomb_2") - ident.n_payload
