@@ -191,6 +191,14 @@ class HexapodModel:
         self._theta_platform = RigidPayload(
             params.platform_mass_kg, params.platform_com_m, params.platform_inertia_kg_m2
         ).standard_parameters()
+        # forward kinematics starts from the home pose moved by its linearisation, xi = J(home) (q - q(home)):
+        # one Newton step for the price of a 6x6 product (None when home is singular: plain home start)
+        home_p = np.asarray(params.home_position_m, dtype=float)[None, :]
+        self._home_q = self.inverse_kinematics(home_p, np.eye(3)[None])[0]
+        try:
+            self._home_jac: Array | None = np.linalg.inv(self._inverse_jacobian(home_p, np.eye(3)[None])[0])
+        except np.linalg.LinAlgError:
+            self._home_jac = None
 
     def platform_dof(self) -> int:
         """k = 6: ``[v; omega]``."""
@@ -266,8 +274,9 @@ class HexapodModel:
         """Platform pose from leg lengths by Newton's method on the pose.
 
         Step: ``dxi = J_inv^-1 (q - q(p, R))``, ``p += dv``, ``R <- exp([d omega]x) R`` (the increment is a
-        twist in the base frame, so J_inv is the exact derivative). Starts from the home pose, or from
-        ``initial_p`` (N, 3) / ``initial_R`` (N, 3, 3), e.g. the previous sample's pose.
+        twist in the base frame, so J_inv is the exact derivative). Starts from the home pose moved by the
+        first-order twist ``J(home) (q - q(home))`` (Newton's first step from home, with the Jacobian of home
+        computed once), or from ``initial_p`` (N, 3) / ``initial_R`` (N, 3, 3), e.g. the previous sample's pose.
         Converged when ``max_j |q_j - q_j(p, R)| <= tolerance_m``.
 
         Raises
@@ -277,14 +286,23 @@ class HexapodModel:
         """
         q = _checked("q", q, (None, 6))
         n = q.shape[0]
-        if initial_p is None:
-            p = np.tile(np.asarray(self.params.home_position_m, dtype=float), (n, 1))
-        else:
+        predicted = None
+        if (initial_p is None or initial_R is None) and self._home_jac is not None:
+            predicted = (q - self._home_q) @ self._home_jac.T  # (N, 6) twist from home, first order
+            if not np.isfinite(predicted).all():
+                predicted = None
+        if initial_p is not None:
             p = _checked("initial_p", initial_p, (n, 3)).copy()
-        if initial_R is None:
-            R = np.tile(np.eye(3), (n, 1, 1))
+        elif predicted is not None:
+            p = np.asarray(self.params.home_position_m, dtype=float) + predicted[:, :3]
         else:
+            p = np.tile(np.asarray(self.params.home_position_m, dtype=float), (n, 1))
+        if initial_R is not None:
             R = _checked("initial_R", initial_R, (n, 3, 3)).copy()
+        elif predicted is not None:
+            R = exp_rotation(predicted[:, 3:])
+        else:
+            R = np.tile(np.eye(3), (n, 1, 1))
         iterations = np.zeros(n, dtype=np.int64)
         for _ in range(max_iterations + 1):
             res = q - np.linalg.norm(p[:, None, :] + np.einsum("nik,jk->nji", R, self._P) - self._B, axis=2)

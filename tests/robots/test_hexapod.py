@@ -151,6 +151,18 @@ def test_ik_fk_round_trip(model: HexapodModel, rng: np.random.Generator) -> None
     assert warm.iterations.max() <= sol.iterations.max()
 
 
+def test_fk_starts_from_the_linearised_home_pose(model: HexapodModel, rng: np.random.Generator) -> None:
+    # the first-order start xi = J(home) (q - q(home)) is Newton's first step from home, without its solve
+    p, R = random_poses(rng, 200)
+    q = model.inverse_kinematics(p, R)
+    predicted = model.solve_forward_kinematics(q)
+    home_p = np.tile(np.asarray(model.params.home_position_m), (200, 1))
+    from_home = model.solve_forward_kinematics(q, initial_p=home_p, initial_R=np.tile(np.eye(3), (200, 1, 1)))
+    assert_allclose(predicted.p, from_home.p, rtol=0, atol=1e-11)
+    assert_allclose(predicted.R, from_home.R, rtol=0, atol=1e-11)
+    assert predicted.iterations.sum() < from_home.iterations.sum()
+
+
 def test_inverse_jacobian_matches_finite_differences(model: HexapodModel, rng: np.random.Generator) -> None:
     # Reference: definition of the derivative; central differences along the twist (v, omega base frame)
     p, R = random_poses(rng, 30)
