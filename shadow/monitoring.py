@@ -24,7 +24,12 @@ analysis and the tests all run exactly the same code. Per batch of samples:
    description expects: missed pick (nothing carried), double pick, wrong work piece (outside the tolerance
    by more than 3 times the transfer mass's std combined with the transfer-to-transfer scatter); the observer
    sees a wrong carried mass as an external effort over the transfer, so collisions a transfer's mass explains
-   are not left out of its weighing (only contacts are) and are folded into its payload fault;
+   are not left out of its weighing (only contacts are) and are folded into its payload fault. The hexapod's part
+   is weighed against the filter state from before the output it began in, and a faulty one is undone (the
+   filter goes back to that state), so that an empty clamp or a double part is not learnt as leg offsets. The
+   delta's transfers are judged once the tool mass is known to a quarter of the work piece's tolerance; the
+   hexapod's one by one, once the std of the transfer's mass from the filter's whole covariance is (missed and
+   double picks: a tenth of the part's mass);
    payload changes: the mass of every single-piece transfer, and (delta) the tool's own mass weighed on every
    empty move the same way, each go to a :class:`~shadow.detection.change.MassStepWatch` (two-sided CUSUM, GLR
    for the masses before and after); a confirmed step is a ``payload_change`` event, the filter is told
@@ -109,7 +114,7 @@ from shadow.ingest.wire import PositionUnit, SampleBatch, encode_binary
 from shadow.robots.delta import DeltaModel
 from shadow.robots.description import DeltaTool, RobotDescription, build_model
 from shadow.robots.drives import declared_effort_timing, effort_from_current
-from shadow.robots.friction import friction_effort
+from shadow.robots.friction import friction_effort, friction_regressor
 from shadow.robots.hexapod import HexapodModel
 from shadow.robots.parameters import MeasuredQuantity
 from shadow.store.repository import StepResults
@@ -380,6 +385,14 @@ class RobotMonitor:
         self._last_seq = 0
         self._transfer = np.zeros((0, 3 + self.n))  # open transfer per sample: t, Y^T W z, Y^T W Y, |Y_p|
         self._transfer_open = False
+        # the filter state before the output in which the open transfer began (None: not known), and that output's
+        # first sample time [s]: the transfer is weighed against it, and a faulty one is undone back to it
+        self._transfer_before: FilterState | None = None
+        self._transfer_before_t_s = np.nan
+        self._rolled_back = False  # a faulty transfer undid the filter's update in this output
+        # per sample of the open transfer: y^T W H, the pull of every filter parameter on its weighed mass (p_x,)
+        self._pull_width = 0 if self.delta else len(self.tracker.parameter_names)  # the delta's gate needs none
+        self._transfer_pull = np.zeros((0, self._pull_width))
         self._settled = False  # the tool mass has once been known well enough to judge transfers
         self._empty = np.zeros((0, 3 + self.n))  # open empty move (tool not gripping), same columns
         # a declared work piece the tool state switches: the delta's picked item, the hexapod's clamped part
@@ -538,14 +551,22 @@ class RobotMonitor:
             # on the empty moves catches a tool changed during the pause)
             # (missed and double picks are judged then; the fine checks wait until the filter has settled again)
             known = self._x_prior.shape == out.x.shape
-            fine = known and self._std_prior[0] <= self._settled_tool_std_kg()
+            # (the hexapod's transfers are gated one by one instead, on their mass's std from the whole estimate)
+            fine = known and (not self.delta or self._std_prior[0] <= self._settled_tool_std_kg())
             self._settled = self._settled or fine
             settled = known and self._settled
             n_events = len(results.events)
-            self._transfers_for(out, self._x_prior if settled else out.x, results, judge=settled, fine=fine)
+            self._rolled_back = False
+            self._transfers_for(
+                out, self._x_prior if settled else out.x, results, judge=settled, fine=fine, before=before
+            )
             # a transfer judged faulty in this output explains its residual as the wrong mass does
             contact = contact or any(e["kind"] == "payload_fault" for e in results.events[n_events:])
-        self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
+        if self._rolled_back:  # the next output starts from the state the faulty transfer was undone to
+            state = self.tracker.filter.state
+            self._x_prior, self._std_prior = state.x.copy(), np.sqrt(np.diag(state.P))
+        else:
+            self._x_prior, self._std_prior = out.x.copy(), out.std.copy()
         self._wear_for(out, t_end, results)
         self._mode_for(out, results)
         self._residual_drift_for(out, rms, results, explained=bool(contact))
@@ -645,39 +666,98 @@ class RobotMonitor:
         return 0.25 * float(self.description.tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
 
     def _transfers_for(
-        self, out: TrackerOutput, x: Array, results: StepResults, *, judge: bool, fine: bool = True
+        self,
+        out: TrackerOutput,
+        x: Array,
+        results: StepResults,
+        *,
+        judge: bool,
+        fine: bool = True,
+        before: FilterState | None = None,
     ) -> None:
         """Follow the open transfer through this output and judge every transfer that ended in it.
 
-        ``x`` is the filter estimate the transfer is judged against; until the estimator has settled
+        ``x`` is the filter estimate the empty moves are weighed against; until the estimator has settled
         (``judge`` False) transfers are followed but not judged; while it is not settled now (``fine`` False, e.g.
         after a pause) only missed and double picks are judged, and neither the work piece nor the tool is weighed
-        for a change."""
+        for a change. ``before`` is the filter state before this output's update (None: not known).
+
+        The hexapod's part is weighed, over all its samples, against the filter state from before the output it began
+        in (none of its samples has pulled that state; a transfer that began in an earlier output would otherwise be
+        weighed partly against an estimate its own first samples had already moved). A part judged faulty is
+        undone: the filter goes back to that state, propagated to the end of this output (``P + Q T``), so that an
+        empty clamp or a double pick is not learnt as friction, offsets or a lighter part (on the hexapod, whose
+        part's column is nearly that of the leg offsets at small motions, the next part was otherwise weighed
+        0.27 kg off)."""
         n_pay = self.tracker.n_payload
         j = self._work_index
         assert j is not None and self.tracker.work_piece_per_kg is not None
-        tau_f = friction_effort(
-            out.qd,
-            x[n_pay:],
-            smooth_velocity=self.settings.tracker.smooth_velocity,
-            stribeck_velocity=self.settings.tracker.stribeck_velocity,
-        )
         y = out.Y_payload @ self.tracker.work_piece_per_kg  # (K, n) work-piece column Y_p w (delta: Y_p)
-        carried = np.einsum("kap,p->ka", out.Y_payload, x[:j])  # the tool's (fixture's) own effort
-        z = out.effort - out.tau_known - carried - tau_f  # what the carried mass must explain
         w = 1.0 / np.maximum(out.noise_std, 1e-12) ** 2  # W = diag(1 / sigma^2)
-        terms = np.column_stack([out.t, np.sum(y * w * z, axis=1), np.sum(y * w * y, axis=1), np.abs(y)])
+
+        def terms_at(xv: Array) -> Array:
+            """Per sample: t, Y^T W z, Y^T W Y, |Y_p| with z what the carried mass must explain at estimate xv."""
+            tau_f = friction_effort(
+                out.qd,
+                xv[n_pay:],
+                smooth_velocity=self.settings.tracker.smooth_velocity,
+                stribeck_velocity=self.settings.tracker.stribeck_velocity,
+            )
+            carried = np.einsum("kap,p->ka", out.Y_payload, xv[:j])  # the tool's (fixture's) own effort
+            z = out.effort - out.tau_known - carried - tau_f
+            return np.column_stack([out.t, np.sum(y * w * z, axis=1), np.sum(y * w * y, axis=1), np.abs(y)])
+
+        # y^T W H per sample: z above is linear in every other parameter (the fixture's along Y_p, friction along
+        # Y_f), so the weighed mass moves by -sum(y^T W H) dx / sum(y^T W y) when the estimate moves by dx
+        pull = np.zeros((y.shape[0], 0))
+        if self._pull_width:
+            Y_f = friction_regressor(
+                out.qd,
+                smooth_velocity=self.settings.tracker.smooth_velocity,
+                stribeck_velocity=self.settings.tracker.stribeck_velocity,
+            )
+            yw = y * w
+            pull = np.concatenate(
+                [np.einsum("ka,kap->kp", yw, out.Y_payload[:, :, :j]), np.zeros((y.shape[0], n_pay - j)),
+                 np.einsum("ka,kab->kb", yw, Y_f)],
+                axis=1,
+            )  # fmt: skip
+        terms = terms_at(x)
         grip = out.gripping > 0.5
         was_open = self._transfer.shape[0] > 0 or self._transfer_open
+        if not was_open:  # a transfer that begins in this output is weighed against the state before it
+            self._transfer_before, self._transfer_before_t_s = before, float(out.t[0])
+        # (the hexapod's only: the delta's tool and step watches are tuned to weighing against x; not re-measured)
+        open_before = self._transfer_before if judge and not self.delta else None
+        transfer_terms = terms if open_before is None else terms_at(open_before.x)
+        x_transfer = x if open_before is None else open_before.x
         edges = np.flatnonzero(np.diff(np.concatenate([[was_open], grip]).astype(np.int8)))  # tool-state changes
         a, state = 0, was_open
         for e in [*edges, out.t.shape[0]]:  # loop over tool-state changes, each run taken in bulk
             if state:  # samples a..e-1 belong to the open transfer
-                self._transfer = np.concatenate([self._transfer, terms[a:e]])
+                self._transfer = np.concatenate([self._transfer, transfer_terms[a:e]])
+                self._transfer_pull = np.concatenate([self._transfer_pull, pull[a:e]])
                 if e < out.t.shape[0]:  # the tool let go at sample e: the transfer is complete
                     if judge and self._transfer.shape[0]:
-                        self._judge_transfer(self._transfer, float(x[j]), results, fine=fine)
+                        n_events = len(results.events)
+                        self._judge_transfer(
+                            self._transfer,
+                            float(x_transfer[j]),
+                            results,
+                            fine=fine,
+                            pull=self._transfer_pull,
+                            covariance=None if open_before is None else open_before.P,
+                        )
+                        faulty = any(ev["kind"] == "payload_fault" for ev in results.events[n_events:])
+                        if faulty and open_before is not None:
+                            self._undo_since(open_before, self._transfer_before_t_s, float(out.t[-1]))
                     self._transfer = np.zeros((0, 3 + self.n))
+                    self._transfer_pull = np.zeros((0, pull.shape[1]))
+                    # the next transfer, if it begins in this output: before this output, or what it was undone to
+                    if self._rolled_back:
+                        self._transfer_before, self._transfer_before_t_s = self.tracker.filter.state, float(out.t[-1])
+                    else:
+                        self._transfer_before, self._transfer_before_t_s = before, float(out.t[0])
             else:  # an empty move: on it the same terms weigh the tool alone, as a deviation from x[0]
                 self._empty = np.concatenate([self._empty, terms[a:e]])
                 if e < out.t.shape[0]:  # the tool closed at sample e
@@ -690,8 +770,29 @@ class RobotMonitor:
             a = e
         self._transfer_open = bool(state)
 
-    def _judge_transfer(self, terms: Array, assumed_kg: float, results: StepResults, *, fine: bool = True) -> None:
+    def _undo_since(self, state: FilterState, from_s: float, to_s: float) -> None:
+        """Put the filter back to ``state`` (taken at ``from_s``), propagated over the span to ``to_s`` [s]."""
+        self.tracker.filter.state = predict(state, self.tracker.filter.model, max(to_s - from_s, 0.0))
+        self._rolled_back = True
+
+    def _judge_transfer(
+        self,
+        terms: Array,
+        assumed_kg: float,
+        results: StepResults,
+        *,
+        fine: bool = True,
+        pull: Array | None = None,
+        covariance: Array | None = None,
+    ) -> None:
         """Judge one transfer from its per-sample terms (K, 3 + n): t, Y^T W z, Y^T W Y, |Y_p| per actuator.
+
+        The hexapod's transfers are judged by how well the filter state they are weighed against pins their mass:
+        with ``pull`` (K, p_x), each sample's y^T W H, and the ``covariance`` P of that state, the weighed mass's
+        std from the estimate is ``sqrt(g^T P g)``, ``g = sum y^T W H / sum y^T W y`` (first-order propagation).
+        The fine checks need it within a quarter of the part's tolerance, missed and double picks within a tenth
+        of the part's mass; the ten fixture parameters are then known well enough along the part's column, however
+        uncertain each is alone. (The delta's gate is the tool mass's own std: one mass on the same column.)
 
         The observer ran with the filter's work-piece mass ``assumed_kg``, so a wrong carried mass shows there as an
         external effort of at most ``|m - assumed| max |Y_p|`` per actuator (plus its threshold) for the whole
@@ -724,6 +825,14 @@ class RobotMonitor:
         tool = self.description.tool
         expected = self._expected_piece_kg  # the described work piece, or the new one after a reported change
         tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
+        if not self.delta:
+            if pull is None or covariance is None:
+                return  # the state the transfer was weighed against is not known: no judgement
+            g = pull[keep].sum(axis=0) / s_yy
+            from_estimate_kg = float(np.sqrt(max(g @ covariance @ g, 0.0)))
+            if not from_estimate_kg <= 0.1 * expected:  # NaN too (a checkpoint that did not keep the pull)
+                return
+            fine = fine and from_estimate_kg <= 0.25 * tolerance
         m = s_yz / s_yy  # weighted least squares of the carried mass
         std = 1.0 / np.sqrt(s_yy)
         ratio = m / expected if expected > 0 else np.inf
@@ -1248,6 +1357,7 @@ class RobotMonitor:
         state.update(self._raw.save("raw/"))
         state["last_seq"] = np.array(self._last_seq)
         state["transfer"] = self._transfer.copy()
+        state["transfer_pull"] = self._transfer_pull.copy()
         state["transfer_open"] = np.array(self._transfer_open)
         if self._work_index is not None:
             state["empty"] = self._empty.copy()
@@ -1269,6 +1379,10 @@ class RobotMonitor:
             state["collisions/last_qd"] = self._observer_last.qd.copy()
             state["collisions/last_gripping"] = np.array(self._observer_last.gripping)
         state["transfer_settled"] = np.array(self._settled)
+        state["transfer_before/t_s"] = np.array(self._transfer_before_t_s)
+        state["transfer_before/present"] = np.array(self._transfer_before is not None)
+        if self._transfer_before is not None:
+            state.update({f"transfer_before/{k}": v for k, v in self._transfer_before.to_dict().items()})
         state["std_prior"] = self._std_prior.copy()
         state["modes/dt_s"] = np.array(np.nan if self._welch is None else self._welch.settings.dt_s)
         if self._welch is not None:
@@ -1308,6 +1422,11 @@ class RobotMonitor:
         self._raw = _RawBuffer.restore(self.n, "raw/", state)
         self._last_seq = int(state["last_seq"])
         self._transfer = np.asarray(state["transfer"], dtype=float).reshape(-1, 3 + self.n).copy()
+        k, p_x = self._transfer.shape[0], self._pull_width
+        pull = np.asarray(state.get("transfer_pull", np.zeros(0)), dtype=float)
+        if p_x == 0 or pull.size != k * p_x:  # the delta keeps none; a checkpoint from before it was kept: unknown
+            pull = np.full((k, p_x), np.nan)
+        self._transfer_pull = pull.reshape(k, p_x).copy()
         self._transfer_open = bool(state["transfer_open"])
         if self._work_index is not None:  # checkpoints written before the step watches existed lack these keys
             self._empty = np.asarray(state.get("empty", np.zeros((0, 3 + self.n))), dtype=float).reshape(-1, 3 + self.n)
@@ -1343,6 +1462,10 @@ class RobotMonitor:
                 bool(state["collisions/last_gripping"]),
             )
         self._settled = bool(state.get("transfer_settled", False))
+        self._transfer_before_t_s = float(state.get("transfer_before/t_s", np.nan))
+        self._transfer_before = None  # checkpoints written before it lack it: the open transfer is not undone
+        if bool(state.get("transfer_before/present", False)):
+            self._transfer_before = FilterState.from_dict({k: state[f"transfer_before/{k}"] for k in ("x", "P", "R")})
         self._std_prior = np.asarray(state["std_prior"], dtype=float).copy()
         # checkpoints written before the drift watches existed lack these keys: they start afresh
         dt_s = float(state.get("modes/dt_s", np.nan))
