@@ -67,6 +67,12 @@ def test_demo_rejects_a_negative_duration() -> None:
     assert "--duration must be > 0" in result.stderr
 
 
+def test_demo_rejects_a_healthy_run_of_no_length() -> None:
+    result = run_cli("demo", "--commission-s", "0")
+    assert result.returncode != 0
+    assert "--commission-s must be > 0" in result.stderr
+
+
 @pytest.mark.mosquitto
 @pytest.mark.slow
 @pytest.mark.parametrize("broker", ["mosquitto", "embedded"])
