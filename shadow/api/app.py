@@ -153,8 +153,7 @@ End = Annotated[str | None, Query(description="ISO 8601 end (default: now)")]
 @router.get("/robots", summary="Robots and their current health")
 def list_robots(store: StoreDep) -> out.RobotListOut:
     robots = []
-    for r in store.robots():
-        health = {h["scope"]: h for h in store.latest_health(r["robot_id"])}
+    for r, health in store.robots_with_health():
         robots.append(
             out.RobotOut(
                 robot_id=r["robot_id"],
@@ -163,7 +162,7 @@ def list_robots(store: StoreDep) -> out.RobotListOut:
                 name=r["name"],
                 family=r["family"],
                 n_actuators=r["n_actuators"],
-                health=health_out(health["robot"]) if "robot" in health else None,
+                health=None if health is None else health_out(health),
             )
         )
     return out.RobotListOut(robots=robots)

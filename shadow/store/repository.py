@@ -385,6 +385,34 @@ class SqlStore:
         with self.engine.connect() as conn:
             return [dict(r._mapping) for r in conn.execute(query)]
 
+    def robots_with_health(self) -> list[tuple[dict[str, Any], dict[str, Any] | None]]:
+        """Every robot with its newest robot-scope health snapshot (None before its first), in one query.
+
+        Driven from ``robots``: per robot one seek for the newest time of its ``robot`` scope and one for that row
+        (index ``ix_health_snapshots_scope``), so an overview of N robots costs N pairs of seeks, whatever their
+        history, instead of N calls of :meth:`latest_health` that each also fetch every actuator's row.
+        """
+        r, t = schema.robots, schema.health_snapshots
+        y = t.alias("y")
+        newest = (
+            sa.select(sa.func.max(y.c.time_s)).where(y.c.robot_id == r.c.robot_id, y.c.scope == "robot")
+        ).scalar_subquery()
+        health_cols = [c.label(f"h_{c.name}") for c in t.c]
+        query = (
+            sa.select(r, *health_cols)
+            .select_from(r)
+            .outerjoin(t, sa.and_(t.c.robot_id == r.c.robot_id, t.c.scope == "robot", t.c.time_s == newest))
+            .order_by(r.c.robot_id)
+        )
+        out: list[tuple[dict[str, Any], dict[str, Any] | None]] = []
+        with self.engine.connect() as conn:
+            for row in conn.execute(query):
+                m = row._mapping
+                robot = {c.name: m[c.name] for c in r.c}
+                health = {c.name: m[f"h_{c.name}"] for c in t.c} if m["h_scope"] is not None else None
+                out.append((robot, health))
+        return out
+
     def unmonitored_intervals(self, robot_id: str, *, start_s: float, end_s: float) -> list[dict[str, Any]]:
         t = schema.unmonitored_intervals
         query = sa.select(t).where(t.c.robot_id == robot_id, t.c.end_s >= start_s, t.c.start_s < end_s)

@@ -184,6 +184,15 @@ def test_latest_health_is_the_newest_of_each_scope(store: SqlStore) -> None:
     assert next(h for h in got if h["scope"] == "actuator:3")["figures"] == {"k": 120}
     assert store.latest_health("northfield/line3/nobody") == []
 
+    # the overview: each robot with its newest robot-scope row, the same as latest_health's; none before the first
+    store.register_robot("northfield/line3/picker-3", family="delta", n_actuators=3)
+    overview = store.robots_with_health()
+    assert [r["robot_id"] for r, _ in overview] == sorted([ROBOT, OTHER, "northfield/line3/picker-3"])
+    for robot, health in overview:
+        expected = [h for h in store.latest_health(robot["robot_id"]) if h["scope"] == "robot"]
+        assert health == (expected[0] if expected else None)
+    assert dict((r["robot_id"], h) for r, h in overview)["northfield/line3/picker-3"] is None
+
 
 def test_migration_0003_adds_the_indices_to_a_filled_store(tmp_path: Path) -> None:
     url = f"sqlite:///{tmp_path / 'old.db'}"
@@ -299,6 +308,7 @@ def test_the_reads_cost_the_same_on_ten_times_the_history(tmp_path: Path) -> Non
         start = end - 3600.0
         work[hours] = {
             "health": vm_steps(store, partial(store.latest_health, ROBOT)),
+            "overview": vm_steps(store, store.robots_with_health),
             "estimates": vm_steps(store, partial(store.estimates, ROBOT, start_s=start, end_s=end, every_s=12.0)),
             "residuals": vm_steps(
                 store, partial(store.residual_aggregates, ROBOT, start_s=start, end_s=end, every_s=12.0)
@@ -320,6 +330,11 @@ def test_sqlite_plans_use_the_series_indices(tmp_path: Path) -> None:
     health = plans(store, lambda: store.latest_health(ROBOT))
     assert health and all("SCAN health_snapshots" not in p and "SCAN x" not in p for p in health), health
     assert any("ix_health_snapshots_scope" in p for p in health), health
+    overview = " || ".join(plans(store, store.robots_with_health))
+    assert "SCAN health_snapshots" not in overview and "SCAN y" not in overview, overview  # robots: scanned
+    # per robot: the newest time by the scope index, then its row by the primary key
+    assert "SEARCH y USING COVERING INDEX ix_health_snapshots_scope (robot_id=? AND scope=?)" in overview, overview
+    assert "SEARCH health_snapshots USING INDEX" in overview, overview
     series = plans(store, lambda: store.estimates(ROBOT, start_s=end - 1800, end_s=end, every_s=60.0))
     joined = " || ".join(series)
     assert "SCAN estimates" not in joined and "SCAN x" not in joined, joined
