@@ -59,7 +59,7 @@ from shadow.ingest.wire import Released, SampleBatch, SequenceTracker
 from shadow.monitoring import RobotMonitor, default_settings, nominal_baseline
 from shadow.robots.description import RobotDescription, example_paths, load_description
 from shadow.store.repository import StepResults
-from simulators.live import KELVIN_OFFSET, FeedSettings, Window, simulate_windows, window_batches
+from simulators.live import FeedSettings, Window, simulate_windows, window_batches
 from simulators.plant import MassUpdate
 from simulators.publish import RecordingWriter
 from simulators.run import DemoEffects, demo_loop, hexapod_reference, run_closed_loop
@@ -132,21 +132,7 @@ def held_fixture_windows(
         ambient_c=np.full(n_windows, 24.0),  # as the simulator's feed
         initial_temperature_c=np.full(n, 35.0),
     )
-    return [
-        Window(
-            t_s=rec.stamp_s[i],
-            q=rec.q[i],
-            measured=rec.effort[i],
-            is_current=rec.is_current,
-            tool=rec.tool[i],
-            temperature_k=rec.temperature_c[i] + KELVIN_OFFSET,
-            impact_start_s=None,
-            impact_peak_n=0.0,
-            payload=rec.reference.theta_p[i],
-            work_piece_masses_kg=[],
-        )
-        for i in range(n_windows)
-    ]
+    return [Window.from_record(rec, i) for i in range(n_windows)]
 
 
 def part_change_windows(

@@ -23,7 +23,7 @@ from shadow.ingest.wire import PositionUnit, SampleBatch
 from shadow.robots.description import RobotDescription
 from shadow.robots.parameters import MeasuredQuantity
 from simulators.plant import HalfSinePulse, MassUpdate
-from simulators.run import DemoEffects, delta_reference, demo_loop, hexapod_reference, run_closed_loop
+from simulators.run import DemoEffects, RunRecord, delta_reference, demo_loop, hexapod_reference, run_closed_loop
 from simulators.trajectories import delta_pick_place, hexapod_positioning
 
 Array = NDArray[np.float64]
@@ -60,6 +60,30 @@ class Window:
     impact_peak_n: float
     payload: Array  # (T, p) true payload parameters
     work_piece_masses_kg: list[float]  # delta: mass lifted in each cycle of the path (0: missed pick)
+
+    @classmethod
+    def from_record(
+        cls,
+        rec: RunRecord,
+        i: int,
+        *,
+        impact_start_s: float | None = None,
+        impact_peak_n: float = 0.0,
+        work_piece_masses_kg: list[float] | None = None,
+    ) -> Window:
+        """Window ``i`` of a batched closed-loop run (temperatures to kelvin)."""
+        return cls(
+            t_s=rec.stamp_s[i],
+            q=rec.q[i],
+            measured=rec.effort[i],
+            is_current=rec.is_current,
+            tool=rec.tool[i],
+            temperature_k=rec.temperature_c[i] + KELVIN_OFFSET,
+            impact_start_s=impact_start_s,
+            impact_peak_n=impact_peak_n,
+            payload=rec.reference.theta_p[i],
+            work_piece_masses_kg=[] if work_piece_masses_kg is None else work_piece_masses_kg,
+        )
 
 
 def rated_platform_force_n(description: RobotDescription) -> float:
@@ -144,16 +168,11 @@ def simulate_windows(description: RobotDescription, rng: np.random.Generator, se
         pulses=[pulse],
     )
     return [
-        Window(
-            t_s=rec.stamp_s[i],
-            q=rec.q[i],
-            measured=rec.effort[i],
-            is_current=rec.is_current,
-            tool=rec.tool[i],
-            temperature_k=rec.temperature_c[i] + KELVIN_OFFSET,
+        Window.from_record(
+            rec,
+            i,
             impact_start_s=float(start[i]) if has_impact[i] else None,
             impact_peak_n=float(peak[i]),
-            payload=rec.reference.theta_p[i],
             work_piece_masses_kg=picked[i],
         )
         for i in range(b)

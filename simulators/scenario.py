@@ -46,7 +46,7 @@ from shadow.ingest.wire import SampleBatch
 from shadow.robots.drives import current_to_effort_gains
 from shadow.robots.parameters import MeasuredQuantity
 from simulators.effects import StribeckFriction
-from simulators.live import KELVIN_OFFSET, Window, rated_platform_force_n, window_batches
+from simulators.live import Window, rated_platform_force_n, window_batches
 from simulators.plant import MassUpdate, Plant, PlatformPulse, PulseProfile, ShapedPulse
 from simulators.run import DemoEffects, delta_reference, demo_loop, hexapod_reference, run_closed_loop
 from simulators.scenario_file import (
@@ -492,17 +492,8 @@ def generate(scenario: Scenario) -> Iterator[ScenarioWindow]:
         for i, plan in enumerate(plans):
             k = plan.index
             start = scenario.window_start_s(k)
-            window = Window(
-                t_s=rec.stamp_s[i],
-                q=rec.q[i],
-                measured=rec.effort[i],
-                is_current=rec.is_current,
-                tool=rec.tool[i],
-                temperature_k=rec.temperature_c[i] + KELVIN_OFFSET,
-                impact_start_s=None,
-                impact_peak_n=0.0,
-                payload=rec.reference.theta_p[i],
-                work_piece_masses_kg=[] if plan.cycles is None else plan.cycles.workpiece_mass_kg.tolist(),
+            window = Window.from_record(
+                rec, i, work_piece_masses_kg=None if plan.cycles is None else plan.cycles.workpiece_mass_kg.tolist()
             )
             first_seq = k * per_window
             published = window_batches(

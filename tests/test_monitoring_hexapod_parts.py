@@ -20,7 +20,7 @@ from shadow.ingest.wire import Released, SequenceTracker
 from shadow.monitoring import RobotMonitor, default_settings, nominal_baseline
 from shadow.robots.description import load_description
 from shadow.store.repository import StepResults
-from simulators.live import KELVIN_OFFSET, FeedSettings, Window, window_batches
+from simulators.live import FeedSettings, Window, window_batches
 from simulators.plant import MassUpdate
 from simulators.run import demo_loop, hexapod_reference, run_closed_loop
 from simulators.trajectories import hexapod_positioning
@@ -75,18 +75,7 @@ def followed() -> dict:
     released = []
     starts, t0, seq = [], 1_800_000_000.0, 0
     for i in range(WINDOWS):
-        window = Window(
-            t_s=rec.stamp_s[i],
-            q=rec.q[i],
-            measured=rec.effort[i],
-            is_current=rec.is_current,
-            tool=rec.tool[i],
-            temperature_k=rec.temperature_c[i] + KELVIN_OFFSET,
-            impact_start_s=None,
-            impact_peak_n=0.0,
-            payload=rec.reference.theta_p[i],
-            work_piece_masses_kg=[],
-        )
+        window = Window.from_record(rec, i)
         batches = window_batches(window, "aligner-t", start_s=t0, first_seq=seq, samples_per_batch=20, family="hexapod")
         released += [e.batch for b in batches for e in sequence.push(b) if isinstance(e, Released)]
         starts.append(t0)
