@@ -694,15 +694,15 @@ class RobotMonitor:
         assert j is not None and self.tracker.work_piece_per_kg is not None
         y = out.Y_payload @ self.tracker.work_piece_per_kg  # (K, n) work-piece column Y_p w (delta: Y_p)
         w = 1.0 / np.maximum(out.noise_std, 1e-12) ** 2  # W = diag(1 / sigma^2)
+        Y_f = friction_regressor(  # built once: every estimate's friction effort below is Y_f theta_f
+            out.qd,
+            smooth_velocity=self.settings.tracker.smooth_velocity,
+            stribeck_velocity=self.settings.tracker.stribeck_velocity,
+        )
 
         def terms_at(xv: Array) -> Array:
             """Per sample: t, Y^T W z, Y^T W Y, |Y_p| with z what the carried mass must explain at estimate xv."""
-            tau_f = friction_effort(
-                out.qd,
-                xv[n_pay:],
-                smooth_velocity=self.settings.tracker.smooth_velocity,
-                stribeck_velocity=self.settings.tracker.stribeck_velocity,
-            )
+            tau_f = np.einsum("Nij,j->Ni", Y_f, xv[n_pay:])  # friction_effort's own product
             carried = np.einsum("kap,p->ka", out.Y_payload, xv[:j])  # the tool's (fixture's) own effort
             z = out.effort - out.tau_known - carried - tau_f
             return np.column_stack([out.t, np.sum(y * w * z, axis=1), np.sum(y * w * y, axis=1), np.abs(y)])
@@ -711,11 +711,6 @@ class RobotMonitor:
         # Y_f), so the weighed mass moves by -sum(y^T W H) dx / sum(y^T W y) when the estimate moves by dx
         pull = np.zeros((y.shape[0], 0))
         if self._pull_width:
-            Y_f = friction_regressor(
-                out.qd,
-                smooth_velocity=self.settings.tracker.smooth_velocity,
-                stribeck_velocity=self.settings.tracker.stribeck_velocity,
-            )
             yw = y * w
             pull = np.concatenate(
                 [np.einsum("ka,kap->kp", yw, out.Y_payload[:, :, :j]), np.zeros((y.shape[0], n_pay - j)),
@@ -739,8 +734,7 @@ class RobotMonitor:
                 self._transfer_pull = np.concatenate([self._transfer_pull, pull[a:e]])
                 if e < out.t.shape[0]:  # the tool let go at sample e: the transfer is complete
                     if judge and self._transfer.shape[0]:
-                        n_events = len(results.events)
-                        self._judge_transfer(
+                        faulty = self._judge_transfer(
                             self._transfer,
                             float(x_transfer[j]),
                             results,
@@ -748,7 +742,6 @@ class RobotMonitor:
                             pull=self._transfer_pull,
                             covariance=None if open_before is None else open_before.P,
                         )
-                        faulty = any(ev["kind"] == "payload_fault" for ev in results.events[n_events:])
                         if faulty and open_before is not None:
                             self._undo_since(open_before, self._transfer_before_t_s, float(out.t[-1]))
                     self._transfer = np.zeros((0, 3 + self.n))
@@ -784,8 +777,9 @@ class RobotMonitor:
         fine: bool = True,
         pull: Array | None = None,
         covariance: Array | None = None,
-    ) -> None:
-        """Judge one transfer from its per-sample terms (K, 3 + n): t, Y^T W z, Y^T W Y, |Y_p| per actuator.
+    ) -> bool:
+        """Judge one transfer from its per-sample terms (K, 3 + n): t, Y^T W z, Y^T W Y, |Y_p| per actuator; True
+        when it is a payload fault.
 
         The hexapod's transfers are judged by how well the filter state they are weighed against pins their mass:
         with ``pull`` (K, p_x), each sample's y^T W H, and the ``covariance`` P of that state, the weighed mass's
@@ -807,10 +801,10 @@ class RobotMonitor:
         t = terms[:, 0]
         start, end = float(t[0]), float(t[-1])
         if end - start < s.min_transfer_s:
-            return
+            return False
         s_yy_all = float(terms[:, 2].sum())
         if s_yy_all <= 0.0:
-            return
+            return False
         y_max = terms[:, 3:].max(axis=0)
         inside = [c for c in self._pending_events if c.start_time_s <= end + 0.05 and c.end_time_s >= start - 0.05]
         m_all = float(terms[:, 1].sum()) / s_yy_all  # weighed on every sample
@@ -820,18 +814,18 @@ class RobotMonitor:
             keep &= ~((t >= c.start_time_s - 0.02) & (t <= c.end_time_s + 0.05))
         s_yz, s_yy = float(terms[keep, 1].sum()), float(terms[keep, 2].sum())
         if s_yy <= 0.0 or keep.sum() < 0.25 * t.shape[0]:
-            return  # too little of the transfer left to weigh the work piece
+            return False  # too little of the transfer left to weigh the work piece
         count = int(keep.sum())
         tool = self.description.tool
         expected = self._expected_piece_kg  # the described work piece, or the new one after a reported change
         tolerance = float(tool.work_piece_tolerance_kg)  # type: ignore[union-attr]
         if not self.delta:
             if pull is None or covariance is None:
-                return  # the state the transfer was weighed against is not known: no judgement
+                return False  # the state the transfer was weighed against is not known: no judgement
             g = pull[keep].sum(axis=0) / s_yy
             from_estimate_kg = float(np.sqrt(max(g @ covariance @ g, 0.0)))
             if not from_estimate_kg <= 0.1 * expected:  # NaN too (a checkpoint that did not keep the pull)
-                return
+                return False
             fine = fine and from_estimate_kg <= 0.25 * tolerance
         m = s_yz / s_yy  # weighted least squares of the carried mass
         std = 1.0 / np.sqrt(s_yy)
@@ -857,7 +851,7 @@ class RobotMonitor:
             fault = "wrong_work_piece"
             words = "the carried mass is outside the " + ("work piece's" if self.delta else "part's") + " tolerance"
         else:
-            return
+            return False
         explained = [c for c in inside if self._explained_by_mass(c, m, assumed_kg, y_max, end - start)]
         self._pending_events = [c for c in self._pending_events if all(c is not e for e in explained)]
         results.events.append(
@@ -884,6 +878,7 @@ class RobotMonitor:
                 "source_seq": self._last_seq,
             }
         )
+        return True
 
     def _transfer_scatter_kg(self, std_kg: float) -> float:
         """Std of one transfer's mass [kg]: its least-squares std (effort noise alone) combined with the scatter the
